@@ -1,0 +1,5 @@
+import sys
+
+from plateaufit.cli import main
+
+sys.exit(main())
