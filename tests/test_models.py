@@ -58,3 +58,112 @@ def test_formula_refuses_reserved_param_names():
         check_formula("t * exp(-t)", ["exp"])
     with pytest.raises(ValueError, match="identifier"):
         check_formula("a * t", ["a.b"])
+
+
+# ---------------------------------------------------------------------------
+# models
+# ---------------------------------------------------------------------------
+import numpy as np  # noqa: E402
+
+from plateaufit.errors import FitError  # noqa: E402
+from plateaufit.fit.models import CorrelatorModel, make_model  # noqa: E402
+
+T = 24
+
+
+def _two_obs_ranges():
+    return {"pion": np.arange(3, 9), "kaon": np.arange(4, 11)}
+
+
+@pytest.mark.parametrize("form", ["exp", "cosh", "sinh"])
+def test_predict_matches_written_out_sum(form):
+    tr = _two_obs_ranges()
+    m = make_model(form, 2, ["pion", "kaon"], tr, T, oscillating=1, constant=True)
+    phys = {"E0": 0.3, "E1": 0.8, "A0.pion": 2.0, "A0.kaon": 1.5, "A1.pion": -0.4,
+            "A1.kaon": 0.7, "Eosc0": 0.6, "Aosc0.pion": 0.05, "Aosc0.kaon": -0.02,
+            "c.pion": 1e-3, "c.kaon": 2e-3}
+    theta = m.from_physical(np.array([phys[n] for n in m.physical_names]))
+
+    def g(e, t):
+        if form == "exp":
+            return np.exp(-e * t)
+        s = 1.0 if form == "cosh" else -1.0
+        return np.exp(-e * t) + s * np.exp(-e * (T - t))
+
+    expect = []
+    for obs in ["pion", "kaon"]:
+        t = tr[obs]
+        expect.append(phys[f"A0.{obs}"] * g(0.3, t) + phys[f"A1.{obs}"] * g(0.8, t)
+                      + (-1.0) ** t * phys[f"Aosc0.{obs}"] * g(0.6, t) + phys[f"c.{obs}"])
+    np.testing.assert_allclose(m.predict(theta), np.concatenate(expect), rtol=1e-13)
+    assert m.n_points == 13 and isinstance(m, CorrelatorModel)
+
+
+def test_factorised_amplitudes_are_products():
+    ops = {"ll": ("l", "l"), "ls": ("l", "s"), "ss": ("s", "s")}
+    tr = {k: np.arange(2, 7) for k in ops}
+    m = make_model("exp", 1, list(ops), tr, T, factorised=ops)
+    assert m.physical_names == ("E0", "Z0.l", "Z0.s")
+    theta = np.array([0.5, 1.5, -0.5])
+    y = m.predict(theta).reshape(3, 5)
+    e = np.exp(-0.5 * np.arange(2, 7))
+    np.testing.assert_allclose(y, [1.5 * 1.5 * e, 1.5 * -0.5 * e, 0.25 * e], rtol=1e-13)
+
+
+def test_internal_energies_are_log_gaps_and_roundtrip():
+    m = make_model("cosh", 3, ["a"], {"a": np.arange(2, 10)}, T)
+    phys = np.array([0.2, 0.5, 1.4, 1.0, 0.3, 0.1])
+    theta = m.from_physical(phys)
+    np.testing.assert_allclose(theta[:3], [0.2, np.log(0.3), np.log(0.9)], rtol=1e-14)
+    np.testing.assert_allclose(m.to_physical(theta), phys, rtol=1e-14)
+    with pytest.raises(ValueError, match="increasing"):
+        m.from_physical(np.array([0.5, 0.4, 1.4, 1.0, 0.3, 0.1]))
+
+
+@pytest.mark.parametrize("form", ["exp", "sinh"])
+def test_batched_evaluation_equals_loop(form):
+    rng = np.random.default_rng(7)
+    ops = {"a": ("x", "x"), "b": ("x", "y")}
+    m = make_model(form, 2, ["a", "b"], {"a": np.arange(1, 6), "b": np.arange(2, 9)}, T,
+                   oscillating=1, constant=True, factorised=ops)
+    theta = rng.normal(scale=0.3, size=(3, 4, m.n_params))
+    pred, jac, phys = m.predict(theta), m.jacobian(theta), m.physical_jacobian(theta)
+    assert pred.shape == (3, 4, m.n_points) and jac.shape == (3, 4, m.n_points, m.n_params)
+    for i in range(3):
+        for j in range(4):
+            np.testing.assert_allclose(pred[i, j], m.predict(theta[i, j]), rtol=1e-14)
+            np.testing.assert_allclose(jac[i, j], m.jacobian(theta[i, j]), rtol=1e-14)
+            np.testing.assert_allclose(phys[i, j], m.physical_jacobian(theta[i, j]))
+
+
+def test_formula_model_evaluates_expression():
+    m = make_model("formula", 1, ["a", "b"], {"a": np.arange(2, 6), "b": np.arange(3, 5)}, T,
+                   formula={"expression": "amp * (exp(-m * t) + exp(-m * (T - t)))",
+                            "params": {"amp": 1.0, "m": 0.5}})
+    assert not m.has_analytic_jacobian and m.physical_names == ("amp", "m")
+    t = np.array([2, 3, 4, 5, 3, 4.0])
+    np.testing.assert_allclose(m.predict([2.0, 0.4]),
+                               2.0 * (np.exp(-0.4 * t) + np.exp(-0.4 * (T - t))), rtol=1e-14)
+    assert m.predict(np.ones((5, 2))).shape == (5, 6)
+    const = make_model("formula", 1, ["a"], {"a": np.arange(4)}, T,
+                       formula={"expression": "c", "params": {"c": 0.0}})
+    np.testing.assert_allclose(const.predict([0.7]), np.full(4, 0.7))
+    np.testing.assert_allclose(const.jacobian([0.7]), np.ones((4, 1)), rtol=1e-8)
+
+
+def test_make_model_errors_name_the_key():
+    tr = {"a": np.arange(2, 6)}
+    with pytest.raises(FitError, match="unknown model") as err:
+        make_model("expo", 1, ["a"], tr, T)
+    assert err.value.where == "model"
+    with pytest.raises(FitError) as err:
+        make_model("exp", 0, ["a"], tr, T)
+    assert err.value.where == "states"
+    with pytest.raises(FitError) as err:
+        make_model("formula", 1, ["a"], tr, T,
+                   formula={"expression": "a.__class__", "params": {"a": 1}})
+    assert err.value.where == "formula.expression" and "Attribute" in err.value.message
+    with pytest.raises(FitError, match="empty"):
+        make_model("exp", 1, ["a"], {"a": np.arange(0)}, T)
+    with pytest.raises(FitError, match="source and sink"):
+        make_model("exp", 1, ["a"], tr, T, factorised={"b": ("x", "y")})

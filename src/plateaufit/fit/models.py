@@ -23,6 +23,10 @@ from __future__ import annotations
 import ast
 from collections.abc import Iterable, Mapping, Sequence
 
+import numpy as np
+
+from plateaufit.errors import FitError
+
 #: Functions a user formula may call (all element-wise numpy functions).
 FORMULA_FUNCTIONS: tuple[str, ...] = (
     "exp", "log", "cosh", "sinh", "tanh", "sqrt", "abs", "cos", "sin", "where",
@@ -220,3 +224,514 @@ def check_formula(expression: str, param_names: Iterable[str]) -> ast.Expression
 
     visit(tree)
     return tree
+
+
+# ---------------------------------------------------------------------------
+# models
+# ---------------------------------------------------------------------------
+
+FORMS: tuple[str, ...] = ("exp", "cosh", "sinh", "formula")
+
+
+def _energies(first: np.ndarray, lgaps: np.ndarray) -> np.ndarray:
+    """Absolute energies ``E_n = E_{n-1} + exp(lgap_n)`` from ``E0`` and log-gaps."""
+    if lgaps.shape[-1] == 0:
+        return first[..., None]
+    with np.errstate(over="ignore"):
+        gaps = np.exp(lgaps)
+    return np.concatenate([first[..., None], first[..., None] + np.cumsum(gaps, axis=-1)],
+                          axis=-1)
+
+
+def _energy_jacobian(lgaps: np.ndarray) -> np.ndarray:
+    """d E_n / d (E0, lgap_1, ...): lower-triangular (..., s, s)."""
+    s = lgaps.shape[-1] + 1
+    jac = np.zeros(lgaps.shape[:-1] + (s, s))
+    jac[..., :, 0] = 1.0
+    if s > 1:
+        with np.errstate(over="ignore"):
+            gaps = np.exp(lgaps)
+        rows, cols = np.tril_indices(s - 1)
+        jac[..., rows + 1, cols + 1] = gaps[..., cols]
+    return jac
+
+
+def _log_gaps(energies: np.ndarray, what: str) -> np.ndarray:
+    gaps = np.diff(energies, axis=-1)
+    if np.any(~(gaps > 0)):
+        raise ValueError(f"{what} energies must be strictly increasing (E0 < E1 < ...); "
+                         f"got {np.asarray(energies).tolist()}")
+    return np.log(gaps)
+
+
+class CorrelatorModel:
+    """A multi-state correlator model on fixed timeslices (exp, cosh or sinh form).
+
+    For observable ``o`` at timeslice ``t``::
+
+        C_o(t) = sum_n A_n.o g(E_n, t)
+               + sum_m Aosc_m.o (-1)^t g(Eosc_m, t)
+               + c.o
+
+    with ``g = exp(-E t)`` (exp), ``exp(-E t) + exp(-E (T - t))`` (cosh) or
+    ``exp(-E t) - exp(-E (T - t))`` (sinh). The energies are shared by the
+    observables of the fit; the amplitudes are per observable or factorised,
+    ``A_n.o = Z_n.source(o) * Z_n.sink(o)``.
+
+    Build instances with :func:`make_model`.
+
+    Attributes
+    ----------
+    form : str
+        ``exp``, ``cosh``, ``sinh`` (or ``formula`` for :class:`FormulaModel`).
+    observables : tuple of str
+    t_ranges : dict
+        Observable name -> timeslices of the fit.
+    t : ndarray
+        All timeslices, concatenated in observable order (n_points,).
+    obs_index : ndarray
+        Index of the observable of each point (n_points,).
+    time_extent : int
+        The time extent ``T`` of the lattice.
+    param_names : tuple of str
+        Internal parameter names (``E0, lgap1, ..., Eosc0, lgaposc1, ...,``
+        amplitudes, constants).
+    physical_names : tuple of str
+        Reported parameter names, see :func:`physical_parameter_names`.
+    n_params, n_points : int
+    has_analytic_jacobian : bool
+        True: :meth:`jacobian` is analytic.
+
+    References
+    ----------
+    G. P. Lepage et al., "Constrained curve fitting", Nucl. Phys. B (Proc.
+    Suppl.) 106 (2002) 12.
+    """
+
+    has_analytic_jacobian: bool = True
+
+    def __init__(self, form: str, states: int, observables: Sequence[str],
+                 t_ranges: Mapping[str, np.ndarray], time_extent: int, *,
+                 oscillating: int = 0, constant: bool = False,
+                 operators: Mapping[str, tuple[str, str]] | None = None) -> None:
+        if form not in ("exp", "cosh", "sinh"):
+            raise ValueError(f"unknown model form '{form}'; use exp, cosh, sinh or formula")
+        self.form = form
+        self.states = int(states)
+        self.oscillating = int(oscillating)
+        self.constant = bool(constant)
+        self.operators = None if operators is None else {
+            k: (str(v[0]), str(v[1])) for k, v in operators.items()}
+        self._setup_points(observables, t_ranges, time_extent)
+        self.physical_names = tuple(physical_parameter_names(
+            self.observables, self.states, oscillating=self.oscillating,
+            constant=self.constant, operators=self.operators))
+        if self.operators is not None:
+            self.amplitude_labels = tuple(operator_labels(self.operators, self.observables))
+        else:
+            self.amplitude_labels = self.observables
+        s, so, k = self.states, self.oscillating, len(self.amplitude_labels)
+        n_obs = len(self.observables)
+        zsym = "Z" if self.operators is not None else "A"
+        internal = ["E0"] + [f"lgap{n}" for n in range(1, s)]
+        if so:
+            internal += ["Eosc0"] + [f"lgaposc{n}" for n in range(1, so)]
+        internal += [f"{zsym}{n}.{lab}" for n in range(s) for lab in self.amplitude_labels]
+        internal += [f"{zsym}osc{n}.{lab}" for n in range(so) for lab in self.amplitude_labels]
+        if self.constant:
+            internal += [f"c.{obs}" for obs in self.observables]
+        self.param_names = tuple(internal)
+        self.n_params = len(internal)
+        # index slices into the internal vector
+        self._sl_E = slice(0, s)
+        self._sl_Eo = slice(s, s + so)
+        self._sl_A = slice(s + so, s + so + s * k)
+        self._sl_Ao = slice(s + so + s * k, s + so + s * k + so * k)
+        self._sl_c = slice(s + so + (s + so) * k, self.n_params)
+        # the same slices in the reported vector
+        self._ph_E = slice(0, s)
+        self._ph_A = slice(s, s + s * k)
+        self._ph_Eo = slice(s + s * k, s + s * k + so)
+        self._ph_Ao = slice(s + s * k + so, s + (s + so) * k + so)
+        self._ph_c = slice(s + so + (s + so) * k, self.n_params)
+        # precomputed point data
+        self._t_back = self.time_extent - self.t
+        self._sign = np.where(self.t.astype(np.int64) % 2 == 0, 1.0, -1.0)
+        self._onehot_obs = np.zeros((self.n_points, n_obs))
+        self._onehot_obs[np.arange(self.n_points), self.obs_index] = 1.0
+        if self.operators is not None:
+            lab = {name: i for i, name in enumerate(self.amplitude_labels)}
+            self._src_index = np.array([lab[self.operators[self.observables[o]][0]]
+                                        for o in self.obs_index], dtype=np.intp)
+            self._snk_index = np.array([lab[self.operators[self.observables[o]][1]]
+                                        for o in self.obs_index], dtype=np.intp)
+            self._onehot_src = np.zeros((self.n_points, k))
+            self._onehot_src[np.arange(self.n_points), self._src_index] = 1.0
+            self._onehot_snk = np.zeros((self.n_points, k))
+            self._onehot_snk[np.arange(self.n_points), self._snk_index] = 1.0
+
+    # -- set-up shared with FormulaModel -------------------------------------
+    def _setup_points(self, observables: Sequence[str], t_ranges: Mapping[str, np.ndarray],
+                      time_extent: int) -> None:
+        self.observables = tuple(observables)
+        if not self.observables:
+            raise ValueError("a fit needs at least one observable")
+        missing = [o for o in self.observables if o not in t_ranges]
+        if missing:
+            raise ValueError(f"no fit range given for observable(s) {missing}")
+        self.time_extent = int(time_extent)
+        self.t_ranges = {o: np.asarray(t_ranges[o], dtype=float).ravel()
+                         for o in self.observables}
+        for o, tt in self.t_ranges.items():
+            if tt.size == 0:
+                raise ValueError(f"the fit range of observable '{o}' is empty; "
+                                 "choose tmin <= tmax")
+        self.t = np.concatenate([self.t_ranges[o] for o in self.observables])
+        self.obs_index = np.concatenate([np.full(self.t_ranges[o].size, i, dtype=np.intp)
+                                         for i, o in enumerate(self.observables)])
+        self.n_points = int(self.t.size)
+
+    def __repr__(self) -> str:
+        return (f"{type(self).__name__}(form={self.form!r}, states={self.states}, "
+                f"oscillating={self.oscillating}, constant={self.constant}, "
+                f"observables={list(self.observables)}, n_points={self.n_points})")
+
+    @property
+    def n_observables(self) -> int:
+        return len(self.observables)
+
+    @property
+    def factorised(self) -> bool:
+        return self.operators is not None
+
+    def point_slices(self) -> dict[str, slice]:
+        """Slice of each observable's points in the concatenated data vector."""
+        out, start = {}, 0
+        for o in self.observables:
+            n = self.t_ranges[o].size
+            out[o] = slice(start, start + n)
+            start += n
+        return out
+
+    # -- building blocks ------------------------------------------------------
+    def _basis(self, energies: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """g(E_n, t) and dg/dE for energies (..., m) -> (..., m, n_points) each."""
+        e = energies[..., :, None]
+        with np.errstate(over="ignore", invalid="ignore"):
+            fwd = np.exp(-e * self.t)
+            if self.form == "exp":
+                return fwd, -self.t * fwd
+            bwd = np.exp(-e * self._t_back)
+            if self.form == "cosh":
+                return fwd + bwd, -self.t * fwd - self._t_back * bwd
+            return fwd - bwd, -self.t * fwd + self._t_back * bwd
+
+    def _amplitudes_at_points(self, amp: np.ndarray, m: int) -> tuple[np.ndarray, ...]:
+        """Amplitude of each state at each point, (..., m, n_points); plus Z factors."""
+        mat = amp.reshape(amp.shape[:-1] + (m, len(self.amplitude_labels)))
+        if self.operators is None:
+            return (mat[..., self.obs_index],)
+        zsrc = mat[..., self._src_index]
+        zsnk = mat[..., self._snk_index]
+        return zsrc * zsnk, zsrc, zsnk
+
+    # -- public API -------------------------------------------------------------
+    def energies(self, theta: np.ndarray) -> np.ndarray:
+        """Absolute energies E_0.. of the ordinary states, (..., states)."""
+        theta = np.asarray(theta, dtype=float)
+        return _energies(theta[..., 0], theta[..., 1:self.states])
+
+    def predict(self, theta: np.ndarray) -> np.ndarray:
+        """Model values at the fit's points.
+
+        Parameters
+        ----------
+        theta : ndarray, (..., n_params)
+            Internal parameters.
+
+        Returns
+        -------
+        ndarray, (..., n_points)
+        """
+        theta = np.asarray(theta, dtype=float)
+        s, so = self.states, self.oscillating
+        e = _energies(theta[..., 0], theta[..., 1:s])
+        basis, _ = self._basis(e)
+        amp = self._amplitudes_at_points(theta[..., self._sl_A], s)[0]
+        with np.errstate(over="ignore", invalid="ignore"):
+            out = np.einsum("...ij,...ij->...j", amp, basis)
+            if so:
+                eo = _energies(theta[..., s], theta[..., s + 1:s + so])
+                basis_o, _ = self._basis(eo)
+                amp_o = self._amplitudes_at_points(theta[..., self._sl_Ao], so)[0]
+                out = out + self._sign * np.einsum("...ij,...ij->...j", amp_o, basis_o)
+            if self.constant:
+                out = out + theta[..., self._sl_c][..., self.obs_index]
+        return out
+
+    def _energy_block(self, theta: np.ndarray, first: int, m: int, sl_amp: slice,
+                      sign: np.ndarray | None, jac: np.ndarray, col_e: int,
+                      sl_amp_cols: slice) -> None:
+        e0 = theta[..., first]
+        lg = theta[..., first + 1:first + m]
+        e = _energies(e0, lg)
+        basis, dbasis = self._basis(e)
+        if sign is not None:
+            basis = basis * sign
+            dbasis = dbasis * sign
+        amps = self._amplitudes_at_points(theta[..., sl_amp], m)
+        with np.errstate(over="ignore", invalid="ignore"):
+            df_de = amps[0] * dbasis                        # (..., m, n_points)
+            # E_n = E0 + sum_{k<=n} exp(lgap_k): d/dE0 sums all, d/dlgap_k sums n >= k
+            rev = np.cumsum(df_de[..., ::-1, :], axis=-2)[..., ::-1, :]
+            jac[..., :, col_e] = rev[..., 0, :]
+            if m > 1:
+                gaps = np.exp(lg)                           # (..., m-1)
+                jac[..., :, col_e + 1:col_e + m] = np.swapaxes(
+                    rev[..., 1:, :] * gaps[..., :, None], -1, -2)
+            k = len(self.amplitude_labels)
+            block = jac[..., :, sl_amp_cols]
+            if self.operators is None:
+                for n in range(m):
+                    block[..., :, n * k:(n + 1) * k] = basis[..., n, :, None] * self._onehot_obs
+            else:
+                _, zsrc, zsnk = amps
+                for n in range(m):
+                    block[..., :, n * k:(n + 1) * k] = basis[..., n, :, None] * (
+                        zsnk[..., n, :, None] * self._onehot_src
+                        + zsrc[..., n, :, None] * self._onehot_snk)
+
+    def jacobian(self, theta: np.ndarray) -> np.ndarray:
+        """Analytic derivative of :meth:`predict` with respect to the internal parameters.
+
+        Parameters
+        ----------
+        theta : ndarray, (..., n_params)
+
+        Returns
+        -------
+        ndarray, (..., n_points, n_params)
+        """
+        theta = np.asarray(theta, dtype=float)
+        jac = np.zeros(theta.shape[:-1] + (self.n_points, self.n_params))
+        s, so = self.states, self.oscillating
+        self._energy_block(theta, 0, s, self._sl_A, None, jac, 0, self._sl_A)
+        if so:
+            self._energy_block(theta, s, so, self._sl_Ao, self._sign, jac, s, self._sl_Ao)
+        if self.constant:
+            jac[..., :, self._sl_c] = self._onehot_obs
+        return jac
+
+    def to_physical(self, theta: np.ndarray) -> np.ndarray:
+        """Internal parameters -> reported parameters (absolute energies), same shape."""
+        theta = np.asarray(theta, dtype=float)
+        s, so = self.states, self.oscillating
+        parts = [_energies(theta[..., 0], theta[..., 1:s]), theta[..., self._sl_A]]
+        if so:
+            parts.append(_energies(theta[..., s], theta[..., s + 1:s + so]))
+            parts.append(theta[..., self._sl_Ao])
+        parts.append(theta[..., self._sl_c])
+        return np.concatenate(parts, axis=-1)
+
+    def from_physical(self, values: np.ndarray) -> np.ndarray:
+        """Reported parameters -> internal parameters (inverse of :meth:`to_physical`).
+
+        Raises
+        ------
+        ValueError
+            When the energies are not strictly increasing.
+        """
+        values = np.asarray(values, dtype=float)
+        if values.shape[-1] != self.n_params:
+            raise ValueError(f"expected {self.n_params} parameters "
+                             f"{list(self.physical_names)}, got {values.shape[-1]}")
+        s, so = self.states, self.oscillating
+        e = values[..., self._ph_E]
+        parts = [e[..., :1], _log_gaps(e, "state")]
+        if so:
+            eo = values[..., self._ph_Eo]
+            parts += [eo[..., :1], _log_gaps(eo, "oscillating-state")]
+        parts += [values[..., self._ph_A], values[..., self._ph_Ao], values[..., self._ph_c]]
+        return np.concatenate(parts, axis=-1)
+
+    def physical_jacobian(self, theta: np.ndarray) -> np.ndarray:
+        """d (reported parameters) / d (internal parameters), (..., n_params, n_params)."""
+        theta = np.asarray(theta, dtype=float)
+        s, so = self.states, self.oscillating
+        jac = np.zeros(theta.shape[:-1] + (self.n_params, self.n_params))
+        jac[..., self._ph_E, self._sl_E] = _energy_jacobian(theta[..., 1:s])
+        if so:
+            jac[..., self._ph_Eo, self._sl_Eo] = _energy_jacobian(theta[..., s + 1:s + so])
+        for ph, sl in ((self._ph_A, self._sl_A), (self._ph_Ao, self._sl_Ao),
+                       (self._ph_c, self._sl_c)):
+            idx_p = np.arange(self.n_params)[ph]
+            idx_i = np.arange(self.n_params)[sl]
+            jac[..., idx_p, idx_i] = 1.0
+        return jac
+
+
+class FormulaModel(CorrelatorModel):
+    """A user formula ``C(t)`` evaluated at each observable's timeslices.
+
+    The expression is checked by :func:`check_formula` (arithmetic on the
+    parameters, ``t``, ``T`` and whitelisted numpy functions only) and then
+    compiled and evaluated with those numpy functions as the only globals, so
+    no import, attribute access or other call is possible. The parameters are
+    shared by all observables of the fit; internal and reported parameters are
+    the same. The jacobian is numerical (central differences).
+    """
+
+    has_analytic_jacobian = False
+
+    def __init__(self, expression: str, params: Mapping[str, float],
+                 observables: Sequence[str], t_ranges: Mapping[str, np.ndarray],
+                 time_extent: int) -> None:
+        if not params:
+            raise ValueError("a formula needs at least one parameter under params, "
+                             "e.g. {a: 1.0, m: 0.5}")
+        self.form = "formula"
+        self.states = 0
+        self.oscillating = 0
+        self.constant = False
+        self.operators = None
+        self.expression = str(expression)
+        self.start = {str(k): float(v) for k, v in params.items()}
+        tree = check_formula(self.expression, list(self.start))
+        self._code = compile(tree, "<formula>", "eval")
+        self._setup_points(observables, t_ranges, time_extent)
+        self.amplitude_labels = ()
+        self.param_names = tuple(self.start)
+        self.physical_names = self.param_names
+        self.n_params = len(self.param_names)
+        self._globals = {"__builtins__": {}, "exp": np.exp, "log": np.log,
+                         "cosh": np.cosh, "sinh": np.sinh, "tanh": np.tanh,
+                         "sqrt": np.sqrt, "abs": np.abs, "cos": np.cos, "sin": np.sin,
+                         "where": np.where, "pi": np.pi}
+
+    def __repr__(self) -> str:
+        return (f"FormulaModel({self.expression!r}, params={list(self.param_names)}, "
+                f"observables={list(self.observables)}, n_points={self.n_points})")
+
+    def energies(self, theta: np.ndarray) -> np.ndarray:
+        raise ValueError("a formula model has no built-in energies")
+
+    def predict(self, theta: np.ndarray) -> np.ndarray:
+        theta = np.asarray(theta, dtype=float)
+        local = {name: theta[..., i, None] for i, name in enumerate(self.param_names)}
+        local["t"] = self.t
+        local["T"] = float(self.time_extent)
+        with np.errstate(all="ignore"):
+            out = eval(self._code, self._globals, local)  # noqa: S307 - checked by check_formula
+        out = np.asarray(out, dtype=float)
+        return np.broadcast_to(out, theta.shape[:-1] + (self.n_points,)).copy()
+
+    def jacobian(self, theta: np.ndarray) -> np.ndarray:
+        """Central-difference jacobian, (..., n_points, n_params)."""
+        theta = np.asarray(theta, dtype=float)
+        p = self.n_params
+        h = np.cbrt(np.finfo(float).eps) * np.maximum(np.abs(theta), 1e-3)   # (..., p)
+        step = h[..., :, None] * np.eye(p)                                  # (..., p, p)
+        up = self.predict(theta[..., None, :] + step)                       # (..., p, n)
+        down = self.predict(theta[..., None, :] - step)
+        return np.swapaxes((up - down) / (2.0 * h[..., :, None]), -1, -2)
+
+    def to_physical(self, theta: np.ndarray) -> np.ndarray:
+        return np.array(theta, dtype=float, copy=True)
+
+    def from_physical(self, values: np.ndarray) -> np.ndarray:
+        values = np.asarray(values, dtype=float)
+        if values.shape[-1] != self.n_params:
+            raise ValueError(f"expected {self.n_params} parameters "
+                             f"{list(self.physical_names)}, got {values.shape[-1]}")
+        return values.copy()
+
+    def physical_jacobian(self, theta: np.ndarray) -> np.ndarray:
+        theta = np.asarray(theta, dtype=float)
+        return np.broadcast_to(np.eye(self.n_params),
+                               theta.shape[:-1] + (self.n_params, self.n_params)).copy()
+
+
+def make_model(form: str, states: int, observables: Sequence[str],
+               t_ranges: Mapping[str, np.ndarray], time_extent: int, *,
+               oscillating: int = 0, constant: bool = False,
+               factorised: Mapping[str, tuple[str, str]] | None = None,
+               formula: Mapping | None = None) -> CorrelatorModel:
+    """Build the correlator model of one fit.
+
+    Parameters
+    ----------
+    form : {"exp", "cosh", "sinh", "formula"}
+        Functional form; ``formula`` uses ``formula``.
+    states : int
+        Number of ordinary states (ignored for formulas).
+    observables : sequence of str
+        The fit's observables, in order (the data vector's order).
+    t_ranges : mapping
+        Observable name -> timeslices in the fit.
+    time_extent : int
+        Lattice time extent ``T`` (used by cosh/sinh and available as ``T`` in
+        formulas).
+    oscillating : int, optional
+        Number of oscillating partner states, ``(-1)^t`` terms with their own
+        energies ``Eosc_n`` (staggered fermions).
+    constant : bool, optional
+        Add a constant ``c.NAME`` per observable (e.g. thermal wrap-around).
+    factorised : mapping, optional
+        Observable name -> ``(source, sink)`` operator labels; amplitudes are
+        then ``A_n = Z_n.source * Z_n.sink``.
+    formula : mapping, optional
+        ``{"expression": str, "params": {NAME: start}}`` for ``form="formula"``.
+
+    Returns
+    -------
+    CorrelatorModel
+
+    Raises
+    ------
+    plateaufit.errors.FitError
+        When the model cannot be set up; ``where`` is the spec key of the fit
+        entry at fault (``model``, ``states``, ``formula.expression`` ...),
+        relative to the fit.
+
+    References
+    ----------
+    G. P. Lepage et al., "Constrained curve fitting", Nucl. Phys. B (Proc.
+    Suppl.) 106 (2002) 12.
+    """
+    if form not in FORMS:
+        raise FitError("model", f"unknown model '{form}'; use one of {list(FORMS)}")
+    if form == "formula":
+        if not formula or "expression" not in formula:
+            raise FitError("formula", "model 'formula' needs formula: {expression: ..., "
+                           "params: {NAME: start}}")
+        if oscillating or constant or factorised:
+            raise FitError("model", "oscillating, constant and factorised apply to the "
+                           "exp/cosh/sinh models only; write them into the formula instead")
+        try:
+            return FormulaModel(formula["expression"], formula.get("params") or {},
+                                observables, t_ranges, time_extent)
+        except ValueError as exc:
+            raise FitError("formula.expression", str(exc)) from None
+    if formula:
+        raise FitError("formula", f"a formula is given but the model is '{form}'; "
+                       "set model: formula to use it, or remove the formula")
+    if int(states) != states or states < 1:
+        raise FitError("states", f"states must be a whole number >= 1, got {states}")
+    if int(oscillating) != oscillating or oscillating < 0:
+        raise FitError("oscillating", f"oscillating must be a whole number >= 0, "
+                       f"got {oscillating}")
+    if form != "exp" and (time_extent is None or time_extent <= 0):
+        raise FitError("ensemble.time_extent", f"the {form} model needs the time extent T > 0")
+    for o in observables:
+        if o in t_ranges:
+            tt = np.asarray(t_ranges[o], dtype=float)
+            if tt.size and (np.any(tt < 0) or (form != "exp" and np.any(tt > time_extent))):
+                raise FitError("tmin", f"timeslices of '{o}' must lie in 0..{time_extent}, "
+                               f"got {tt.min():g}..{tt.max():g}")
+    try:
+        return CorrelatorModel(form, int(states), observables, t_ranges, time_extent,
+                               oscillating=int(oscillating), constant=constant,
+                               operators=factorised)
+    except ValueError as exc:
+        raise FitError("observables" if "observ" in str(exc) else "factorised"
+                       if "operator" in str(exc) else "", str(exc)) from None
