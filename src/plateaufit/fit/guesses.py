@@ -1,10 +1,9 @@
 """Starting values for correlated fits, from the data themselves.
 
-The ground-state energy comes from a robust effective energy: for each pair of
-neighbouring usable points in the fit range, the energy ``E`` that makes the
-model's own basis function reproduce the ratio ``C(t1)/C(t2)`` (the log effective
-mass for the ``exp`` form, the cosh/sinh effective mass for periodic forms), and
-then the median over pairs and observables. Amplitudes follow from
+The ground-state energy comes from a robust effective energy: the effective
+mass (log for the ``exp`` form, cosh/sinh for the periodic forms, from
+:mod:`plateaufit.stats.effmass`) of each pair of neighbouring usable points in
+the fit range, then the median over pairs and observables. Amplitudes follow from
 ``C(t) / g(E0, t)``; excited states get gaps of a fraction of ``E0`` and
 amplitudes from the residual at the first timeslice. Noisy or negative points
 are skipped; the result is always finite.
@@ -24,6 +23,7 @@ import numpy as np
 
 from plateaufit.errors import FitError
 from plateaufit.fit.models import CorrelatorModel, FormulaModel
+from plateaufit.stats.effmass import effective_mass
 
 __all__ = ["starting_values", "pair_energies"]
 
@@ -47,18 +47,17 @@ def _basis(form: str, energy: np.ndarray, t: np.ndarray, time_extent: float) -> 
 
 def pair_energies(y: np.ndarray, t: np.ndarray, form: str = "exp",
                   time_extent: float | None = None) -> np.ndarray:
-    """Effective energy of each pair of neighbouring points of one correlator.
+    """Effective energy of each pair of neighbouring timeslices in a fit range.
 
-    For points ``(t1, y1), (t2, y2)`` with ``t1 < t2`` the energy ``E`` solves
-    ``g(E, t1) / g(E, t2) = y1 / y2`` with ``g`` the basis of ``form``
-    (``exp``: ``E = log(y1/y2) / (t2 - t1)``; ``cosh``/``sinh``: solved by
-    bisection). Pairs with a non-positive or non-finite ratio, or with no
-    solution in ``(0, 20]``, give NaN.
+    A thin adapter around :func:`plateaufit.stats.effmass.effective_mass`
+    (``log`` for the exp form, ``cosh``/``sinh`` for the periodic forms) for
+    values known only at the fit's timeslices ``t``: the values are placed at
+    their timeslice index, and only pairs ``(t, t + 1)`` both present count.
 
     Parameters
     ----------
     y, t : ndarray, (n,)
-        Correlator values and their timeslices (any order; sorted here).
+        Correlator values and their (whole, non-negative) timeslices.
     form : {"exp", "cosh", "sinh"}
     time_extent : float, optional
         ``T``; needed for cosh and sinh.
@@ -66,7 +65,8 @@ def pair_energies(y: np.ndarray, t: np.ndarray, form: str = "exp",
     Returns
     -------
     ndarray, (n - 1,)
-        One energy per neighbouring pair, in increasing ``t``.
+        Energy of each neighbouring pair in increasing ``t``; NaN where the
+        pair is not adjacent, the effective mass is undefined, or not positive.
     """
     y = np.asarray(y, dtype=float).ravel()
     t = np.asarray(t, dtype=float).ravel()
@@ -74,36 +74,17 @@ def pair_energies(y: np.ndarray, t: np.ndarray, form: str = "exp",
     y, t = y[order], t[order]
     if y.size < 2:
         return np.empty(0)
-    t1, t2 = t[:-1], t[1:]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        ratio = y[:-1] / y[1:]
-        usable = np.isfinite(ratio) & (ratio > 0) & (t2 > t1)
-        log_e = np.where(usable, np.log(np.where(usable, ratio, 1.0)) / np.where(
-            t2 > t1, t2 - t1, 1.0), np.nan)
-    if form == "exp":
-        return np.where(usable & (log_e > 0), log_e, np.nan)
-    if time_extent is None:
-        raise ValueError(f"the {form} effective energy needs the time extent T")
-    T = float(time_extent)
-    # bisection on log g(E, t1) - log g(E, t2) - log(ratio), increasing in E for
-    # t1 < t2 <= T/2; 80 halvings of (0, 20] reach double precision.
-    target = np.log(np.where(usable, ratio, 1.0))
-
-    def h(e: np.ndarray) -> np.ndarray:
-        with np.errstate(divide="ignore", invalid="ignore"):
-            return (np.log(np.abs(_basis(form, e, t1, T)))
-                    - np.log(np.abs(_basis(form, e, t2, T))) - target)
-
-    lo = np.full(t1.shape, 1e-8)
-    hi = np.full(t1.shape, _E_MAX)
-    h_lo, h_hi = h(lo), h(hi)
-    ok = usable & np.isfinite(h_lo) & np.isfinite(h_hi) & (h_lo < 0) & (h_hi > 0)
-    for _ in range(80):
-        mid = 0.5 * (lo + hi)
-        up = h(mid) > 0
-        hi = np.where(up, mid, hi)
-        lo = np.where(up, lo, mid)
-    return np.where(ok, 0.5 * (lo + hi), np.nan)
+    ti = np.rint(t).astype(np.int64)
+    if np.any(ti < 0) or np.any(np.abs(ti - t) > 1e-9):
+        return np.full(y.size - 1, np.nan)
+    full = np.full(int(ti.max()) + 2, np.nan)
+    full[ti] = y
+    kind = {"exp": "log", "cosh": "cosh", "sinh": "sinh"}[form]
+    with np.errstate(all="ignore"):
+        meff = effective_mass(full, kind=kind,
+                              time_extent=None if kind == "log" else int(time_extent))
+    out = np.where(ti[1:] - ti[:-1] == 1, meff[ti[:-1]], np.nan)
+    return np.where(out > 0, out, np.nan)
 
 
 def _dominant_sign(y: np.ndarray) -> float:
