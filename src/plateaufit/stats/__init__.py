@@ -1,1 +1,63 @@
-"""stats subpackage."""
+"""Statistical core: autocorrelation, resampling, covariance of the mean, effective masses.
+
+numpy arrays in, numpy arrays and small frozen dataclasses out; nothing here
+knows about specification files.
+"""
+
+from plateaufit.stats.autocorr import (
+    BinningStudy,
+    BinningWarning,
+    ShortChainWarning,
+    TauIntResult,
+    binning_study,
+    choose_bin_size,
+    tau_int,
+    tau_int_derived,
+)
+from plateaufit.stats.covariance import (
+    CovarianceResult,
+    MeanCovariance,
+    covariance_of_mean,
+    ledoit_wolf_intensity,
+    oas_intensity,
+    per_sample_covariances,
+)
+from plateaufit.stats.effmass import EffectiveMass, effective_mass, effective_mass_jackknife
+from plateaufit.stats.resample import (
+    bin_samples,
+    bin_streams,
+    bootstrap_samples,
+    jackknife_bias_corrected,
+    jackknife_covariance,
+    jackknife_error,
+    jackknife_samples,
+    stream_blocks,
+)
+
+__all__ = [
+    "TauIntResult",
+    "ShortChainWarning",
+    "BinningWarning",
+    "tau_int",
+    "tau_int_derived",
+    "BinningStudy",
+    "binning_study",
+    "choose_bin_size",
+    "bin_samples",
+    "bin_streams",
+    "stream_blocks",
+    "jackknife_samples",
+    "jackknife_error",
+    "jackknife_covariance",
+    "jackknife_bias_corrected",
+    "bootstrap_samples",
+    "CovarianceResult",
+    "covariance_of_mean",
+    "MeanCovariance",
+    "ledoit_wolf_intensity",
+    "oas_intensity",
+    "per_sample_covariances",
+    "EffectiveMass",
+    "effective_mass",
+    "effective_mass_jackknife",
+]
