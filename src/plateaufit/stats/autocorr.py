@@ -4,7 +4,7 @@ Convention: ``tau_int = 1/2 + sum_{t=1}^{W} rho(t)``, so the variance of the
 mean of ``N`` correlated measurements is ``2 tau_int`` times the naive
 ``var / N``. (emcee and several textbooks quote ``1 + 2 sum rho``, twice ours.)
 
-Several Monte Carlo streams are treated as replicas (Wolff 2004, Sect. 3): the
+Several Monte Carlo streams are treated as replicas (Wolff 2004): the
 autocorrelation function is summed over the streams using only pairs of
 configurations within one stream, normalised by the number of such pairs, with
 the overall mean subtracted. Streams are given as one integer label per
@@ -274,8 +274,9 @@ def tau_int(
         subtracting the estimated mean.
     min_length : float, default 50
         The estimate is flagged unreliable (``ShortChainWarning``) when the
-        chain has fewer than ``min_length * tau`` measurements, as emcee does
-        with its ``tol`` (default 50) for its own convention.
+        chain has fewer than ``min_length * tau`` measurements. (emcee's
+        ``integrated_time`` makes the same check with ``tol = 50`` times its
+        own tau, which is twice ours, so it is twice as strict.)
 
     Returns
     -------
@@ -323,7 +324,7 @@ def tau_int_derived(
 ) -> TauIntResult:
     """Autocorrelation time and error of a function of several means.
 
-    The function is linearised at the means (Wolff 2004, Sect. 2-3): the
+    The function is linearised at the means (Wolff 2004): the
     series is projected on the gradient, ``p_i = sum_a f_a (x_ia - xbar_a)``,
     and the Gamma method is applied to the projected series.
 
@@ -345,9 +346,9 @@ def tau_int_derived(
     Notes
     -----
     The gradient is taken by central differences with a step equal to the
-    naive error of each component's mean, ``sigma_a / sqrt(N)`` (a step of the
-    order of the statistical error, as Wolff 2004 does, keeps the
-    linearisation error far below the statistical one). Components without
+    naive error of each component's mean, ``sigma_a / sqrt(N)``: a step of the
+    order of the statistical error keeps the linearisation error far below
+    the statistical one (Wolff 2004 takes a step of this order; from memory). Components without
     fluctuation do not enter the projection.
 
     References
@@ -523,7 +524,7 @@ def choose_bin_size(
     Why: treating bins of size ``B`` as independent underestimates the
     variance of the mean by the relative amount
     ``sum_t t rho(t) / (B tau_int)`` (expand the variance of a bin mean in
-    ``rho``; Flyvbjerg & Petersen 1989, Wolff 2004 Sect. 3.1: the bias of
+    ``rho``; Flyvbjerg & Petersen 1989, Wolff 2004: the bias of
     binning decays only like ``1/B``). For exponential autocorrelation
     ``rho(t) = phi^t`` (AR(1)) this is exactly ``(tau - 1/(4 tau)) / B``
     -- zero for uncorrelated data, ``~tau/B`` for long times. The default
