@@ -235,3 +235,35 @@ def test_data_error_classes(project):
     with pytest.raises(DataError) as err:
         check_spec(d / "spec.yaml")
     assert err.value.where == "observables.a.file"
+
+
+def test_unreliable_tau_is_flagged(capsys, tmp_path):
+    # a strongly autocorrelated short chain (AR(1), phi = 0.97, 80 configurations):
+    # far shorter than the 50 tau the estimator asks for, so tau_int is a lower bound
+    rng = np.random.default_rng(12)
+    n, T, phi = 80, 8, 0.97
+    eta = np.empty(n)
+    eta[0] = rng.standard_normal()
+    for i in range(1, n):
+        eta[i] = phi * eta[i - 1] + np.sqrt(1 - phi**2) * rng.standard_normal()
+    t = np.arange(T)
+    truth = np.exp(-0.5 * t) + np.exp(-0.5 * (T - t))
+    values = truth * (1 + 0.01 * (eta[:, None] + 0.3 * rng.standard_normal((n, T))))
+    np.savetxt(tmp_path / "c.txt", values)
+    data = {"ensemble": {"name": "short", "time_extent": T},
+            "observables": {"c": {"file": "c.txt"}}}
+    code, out, err = run(capsys, tmp_path, data)
+    assert code == 0
+    assert "(lower bound)" in out and "UNRELIABLE tau_int at t = " in out
+    assert "warning: c: tau_int is unreliable" in out
+
+
+def test_unshrunk_singular_covariance_is_reported(capsys, project):
+    d, data = project
+    data["binning"]["size"] = 6          # 10 bins
+    data["covariance"] = {"shrinkage": "none"}
+    data["fits"][0]["tmin"] = 0          # 2 observables x 7 timeslices = 14 points > 10 bins
+    code, out, err = run(capsys, d, data)
+    assert code == 0
+    assert "covariance of the widest range t = 0..6 (14 points, 10 bins): cannot be formed" in out
+    assert "check passed with" in out
