@@ -305,3 +305,15 @@ def test_csv_bad_header_and_bad_values(tmp_path):
     (tmp_path / "f.csv").write_text("config,t,value\n1,0,1.0\n1,1\n")
     with pytest.raises(DataError, match=r"line 3 has 2 fields but the header has 3"):
         load_correlator(tmp_path / "f.csv")
+
+
+def test_csv_and_text_with_byte_order_mark_and_spaces(tmp_path):
+    # files saved by spreadsheet programs often start with a UTF-8 byte order mark
+    (tmp_path / "c.csv").write_bytes(b"\xef\xbb\xbfconfig, t, value\n1, 0, 1.5\n1, 1, 2.5\n"
+                                     b"2, 0, 3.5\n2, 1, 4.5\n")
+    raw = load_correlator(tmp_path / "c.csv")
+    np.testing.assert_array_equal(raw.values, [[1.5, 2.5], [3.5, 4.5]])
+    np.testing.assert_array_equal(raw.config_ids, [1, 2])
+    (tmp_path / "c.txt").write_bytes(b"\xef\xbb\xbf1.5 2.5\n3.5 4.5\n")
+    np.testing.assert_array_equal(load_correlator(tmp_path / "c.txt").values,
+                                  [[1.5, 2.5], [3.5, 4.5]])

@@ -294,7 +294,8 @@ def _read_text(p: Path, ctx: _Ctx) -> np.ndarray:
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UserWarning)  # "input contained no data"
-            values = np.loadtxt(p, comments="#", dtype=np.float64, ndmin=2)
+            values = np.loadtxt(p, comments="#", dtype=np.float64, ndmin=2,
+                                encoding="utf-8-sig")
     except UnicodeDecodeError:
         raise ctx.error("not a text file (cannot decode it as text); set the format") from None
     except ValueError:
@@ -310,7 +311,7 @@ def _read_text(p: Path, ctx: _Ctx) -> np.ndarray:
 def _diagnose_text(p: Path, ctx: _Ctx) -> DataError:
     n_cols: int | None = None
     first_line = 0
-    with open(p, encoding="utf-8", errors="replace") as handle:
+    with open(p, encoding="utf-8-sig", errors="replace") as handle:
         for lineno, line in enumerate(handle, start=1):
             fields = line.split("#", 1)[0].split()
             if not fields:
@@ -439,7 +440,7 @@ def _read_csv(
     p: Path, part: str, ctx: _Ctx
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
     try:
-        text = p.read_text(encoding="utf-8")
+        text = p.read_text(encoding="utf-8-sig")
     except UnicodeDecodeError:
         raise ctx.error("not a text file (cannot decode it as UTF-8)") from None
     except OSError as exc:
