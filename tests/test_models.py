@@ -167,3 +167,12 @@ def test_make_model_errors_name_the_key():
         make_model("exp", 1, ["a"], {"a": np.arange(0)}, T)
     with pytest.raises(FitError, match="source and sink"):
         make_model("exp", 1, ["a"], tr, T, factorised={"b": ("x", "y")})
+
+
+def test_formula_numbers_are_numpy_floats():
+    # a huge integer power must not hang the evaluation, a division by zero not raise
+    for expr, check in [("a * t + 9 ** 9 ** 9", np.isposinf), ("a * t + 1 / 0", np.isposinf),
+                        ("a * t % 0", np.isnan)]:
+        m = make_model("formula", 1, ["x"], {"x": np.arange(3)}, T,
+                       formula={"expression": expr, "params": {"a": 1.0}})
+        assert np.all(check(m.predict(np.array([1.0]))))

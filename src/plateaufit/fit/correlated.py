@@ -934,7 +934,7 @@ def fit_correlator(binned, *, form: str, states: int, tmin: int, tmax: int,
                              n_bins=n_bins, n_total_points=n_total_points, tol=tol)
     y_samples = jackknife_samples(x)
     if per_sample:
-        cov_samples = covmod.per_sample_covariances(x, shrinkage, target)
+        cov_samples = covmod.per_sample_covariances(x, **cov_kw)
         refits = jackknife_refits(y_samples, model, central.theta, cov_samples=cov_samples,
                                   priors=priors, bounds=bounds, engine=engine, tol=tol)
     else:
@@ -950,7 +950,7 @@ def fit_correlator(binned, *, form: str, states: int, tmin: int, tmax: int,
         pcov = np.full((model.n_params, model.n_params), np.nan)
     n_failed = int(np.count_nonzero(~good))
     return CorrelatorFit(
-        model=model, tmin=tmin, tmax=tmax, states=model.states, form=form, central=central,
+        model=model, tmin=tmin, tmax=tmax, states=int(states), form=form, central=central,
         samples=samples, errors=dict(zip(model.physical_names, err.tolist())),
         covariance=cov_result, converged=bool(central.converged and n_failed == 0),
         n_refit_failed=n_failed, param_covariance=pcov, n_fallback=refits.n_fallback,

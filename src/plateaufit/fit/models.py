@@ -570,6 +570,18 @@ class CorrelatorModel:
         return jac
 
 
+class _ConstantsToNames(ast.NodeTransformer):
+    """Replace number literals by names bound to numpy float64 values."""
+
+    def __init__(self, table: dict[str, np.float64]) -> None:
+        self.table = table
+
+    def visit_Constant(self, node: ast.Constant) -> ast.AST:
+        name = f"_const{len(self.table)}"
+        self.table[name] = np.float64(node.value)
+        return ast.copy_location(ast.Name(id=name, ctx=ast.Load()), node)
+
+
 class FormulaModel(CorrelatorModel):
     """A user formula ``C(t)`` evaluated at each observable's timeslices.
 
@@ -597,6 +609,11 @@ class FormulaModel(CorrelatorModel):
         self.expression = str(expression)
         self.start = {str(k): float(v) for k, v in params.items()}
         tree = check_formula(self.expression, list(self.start))
+        # every number becomes a numpy float64 looked up by name, so that no
+        # sub-expression is evaluated in Python integers or floats: 9**9**9 or
+        # 1/0 then give inf/nan (as numpy does) instead of hanging or raising
+        self._constants: dict[str, np.float64] = {}
+        tree = ast.fix_missing_locations(_ConstantsToNames(self._constants).visit(tree))
         self._code = compile(tree, "<formula>", "eval")
         self._setup_points(observables, t_ranges, time_extent)
         self.amplitude_labels = ()
@@ -618,8 +635,9 @@ class FormulaModel(CorrelatorModel):
     def predict(self, theta: np.ndarray) -> np.ndarray:
         theta = np.asarray(theta, dtype=float)
         local = {name: theta[..., i, None] for i, name in enumerate(self.param_names)}
+        local.update(self._constants)
         local["t"] = self.t
-        local["T"] = float(self.time_extent)
+        local["T"] = np.float64(self.time_extent)
         with np.errstate(all="ignore"):
             out = eval(self._code, self._globals, local)  # noqa: S307 - checked by check_formula
         out = np.asarray(out, dtype=float)
