@@ -169,12 +169,10 @@ def test_type_and_value_errors_name_the_key(tmp_path, change, where, needle):
 def test_error_message_gives_the_spec_line(tmp_path):
     err = error_of(tmp_path, lambda d: d["fits"][1].update(tmin="three"))
     assert err.where == "fits[1].tmin"
-    text = yaml.safe_dump({**BASE}, sort_keys=False).splitlines()
     # the line of fits[1].tmin in the written file
     path_lines = (tmp_path / "spec.yaml").read_text().splitlines()
     line = next(i for i, s in enumerate(path_lines, 1) if "tmin: three" in s)
     assert f"[spec.yaml line {line}]" in err.message
-    assert text  # the base spec renders
 
 
 # --------------------------------------------------------------------------- cross checks
