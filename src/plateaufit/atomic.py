@@ -11,6 +11,12 @@ import tempfile
 from pathlib import Path
 
 
+def _current_umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 def write_bytes(path: str | os.PathLike[str], data: bytes) -> Path:
     """Write ``data`` to ``path`` atomically; create parent directories.
 
@@ -30,6 +36,8 @@ def write_bytes(path: str | os.PathLike[str], data: bytes) -> Path:
     target.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
     try:
+        # mkstemp creates the file 0600; give it the mode an ordinary open() would
+        os.fchmod(fd, 0o666 & ~_current_umask())
         with os.fdopen(fd, "wb") as handle:
             handle.write(data)
             handle.flush()
