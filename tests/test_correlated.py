@@ -212,3 +212,19 @@ def test_fit_correlator_bad_ranges_are_fit_errors():
     with pytest.raises(FitError, match="bins"):
         fit_correlator({"a": np.ones((5, 17)), "b": np.ones((6, 17))}, form="exp",
                        states=1, tmin=2, tmax=8, time_extent=T)
+
+
+def test_formula_fit_equals_the_built_in_cosh_fit():
+    # the same one-state cosh written as a formula must give the same fit
+    binned = _binned(states=1)
+    kw = dict(tmin=4, tmax=14, time_extent=T, engine="auto")
+    built_in = fit_correlator(binned, form="cosh", states=1, **kw)
+    formula = fit_correlator(binned, form="formula", states=1, **kw, formula={
+        "expression": "amp * (exp(-m * t) + exp(-m * (T - t)))",
+        "params": {"m": 0.25, "amp": 1.0}})
+    assert formula.engine == "lmfit"          # numerical jacobian: no batched engine
+    assert formula.names == ("m", "amp")
+    np.testing.assert_allclose([formula.values["m"], formula.values["amp"]],
+                               [built_in.values["E0"], built_in.values["A0.pion"]], rtol=1e-7)
+    np.testing.assert_allclose(formula.errors["m"], built_in.errors["E0"], rtol=1e-5)
+    np.testing.assert_allclose(formula.chi2, built_in.chi2, rtol=1e-8)

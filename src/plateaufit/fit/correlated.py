@@ -200,6 +200,13 @@ def hotelling_p_value(chi2: float, dof: int, n_samples: int | None) -> float:
     the F distribution ``F(d, N - d)`` (Hotelling 1931); the p-value is its
     survival function. NaN when ``N <= d``, ``d < 1`` or ``N`` is unknown.
 
+    Notes
+    -----
+    The distribution is exact for Gaussian data fitted with the unshrunk
+    sample covariance of the mean; with shrinkage it is an approximation
+    (the shrunk matrix is closer to the truth, so the correction is smaller
+    than stated here).
+
     References
     ----------
     H. Hotelling, "The generalization of Student's ratio", Ann. Math. Statist.
