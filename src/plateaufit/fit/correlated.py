@@ -203,9 +203,8 @@ def hotelling_p_value(chi2: float, dof: int, n_samples: int | None) -> float:
     Notes
     -----
     The distribution is exact for Gaussian data fitted with the unshrunk
-    sample covariance of the mean; with shrinkage it is an approximation
-    (the shrunk matrix is closer to the truth, so the correction is smaller
-    than stated here).
+    sample covariance of the mean; with shrinkage it is only an
+    approximation.
 
     References
     ----------
