@@ -247,7 +247,9 @@ def _run_fit(index: int, fit_spec: Any, spec: Any, binned: dict[str, np.ndarray]
         fits = scan(data, tmin=fit_spec.tmin, tmax=fit_spec.tmax, states=states,
                     executor=executor, progress=progress, label=fit_spec.name, **kwargs)
     except PlateaufitError as err:
-        raise type(err)(where if not err.where else f"{where}: {err.where}", err.message) from None
+        # the numerical core names keys relative to the fit entry (``tmin``, ``priors.E1``)
+        inner = err.where if err.where and not err.where.startswith("fits[") else ""
+        raise type(err)(f"{where}.{inner}" if inner else (err.where or where), err.message) from None
 
     weights = np.zeros(len(fits))
     fit_warnings: list[str] = []
