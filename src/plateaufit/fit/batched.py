@@ -1,0 +1,536 @@
+"""Batched Levenberg-Marquardt refits: every jackknife sample of a fit at once.
+
+A fit-range scan refits each of its fits on every jackknife sample: 120 fit
+ranges and 200 samples make 24,000 small least-squares problems, all with the
+same model, the same points, and a starting point (the central fit) that is
+already within a fraction of an error bar of every sample's minimum. Looping a
+general-purpose minimiser over them costs milliseconds per refit in
+interpreter overhead, while the arithmetic of one refit is a few thousand
+flops. Here the Levenberg-Marquardt iteration runs on the whole stack of
+samples with numpy array operations: one model evaluation, one Jacobian and
+one batched linear solve per iteration serve every sample, and each sample
+keeps its own damping, accept/reject decision and convergence test.
+
+Problem solved for every sample ``s``::
+
+    chi2_s(theta) = | L_s^{-1} (f(theta) - y_s) |^2
+                    + sum_k ((P_k(theta) - mean_k) / width_k)^2
+
+with ``L_s`` the lower Cholesky factor of the covariance used for that sample
+(one frozen matrix shared by all samples, or one per sample), ``f`` the model,
+and optional Gaussian priors on the *reported* parameters
+``P = model.to_physical(theta)``.
+
+Bounds follow the central fit (:mod:`plateaufit.fit.correlated`), which maps
+bounds on reported parameters to a box on the internal ones
+(:func:`~plateaufit.fit.correlated.internal_bounds`) and minimises inside that
+box. Here trial points are projected onto the same box, and a sample whose
+solution ends on a face of the box is reported *not converged*, so that the
+caller refits it with the central fit's bounded minimiser. A solution strictly
+inside the box is a minimum of the bounded problem as well, so nothing is lost
+for the samples that are reported converged.
+
+Stopping rule. Near a minimum, chi2 itself can no longer tell a better point
+from a worse one: its rounding error (from the cancellation in ``f - y``,
+amplified by the whitening) is typically 1e-13 to 1e-11 in absolute terms,
+which a step of about 1e-6 of a standard error already falls below. Minimisers
+that accept or reject steps by comparing chi2 values therefore stop about
+there. This engine judges such steps by the quadratic model instead and keeps
+taking Gauss-Newton steps until they are ``xtol`` small, so a converged sample
+sits at the zero of the chi2 gradient to about 1e-10 of a standard error.
+
+References
+----------
+K. Levenberg, "A method for the solution of certain non-linear problems in
+least squares", Quart. Appl. Math. 2 (1944) 164.
+
+D. W. Marquardt, "An algorithm for least-squares estimation of nonlinear
+parameters", J. Soc. Indust. Appl. Math. 11 (1963) 431.
+
+J. J. More, "The Levenberg-Marquardt algorithm: implementation and theory",
+in Numerical Analysis, Lecture Notes in Mathematics 630 (1978) 105 -- the
+scaling of the damping by the diagonal of the normal matrix.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from typing import Any, Protocol
+
+import numpy as np
+import scipy.linalg.lapack
+
+from plateaufit.fit.correlated import internal_bounds, prior_terms
+
+__all__ = ["batched_cholesky", "batched_refits", "whitening_matrices"]
+
+# Damping schedule (Marquardt 1963). The first trial of every sample is a pure
+# Gauss-Newton step (lam = 0; the warm start is close to the minimum). A
+# rejected step sets the damping to _LAM_START or multiplies it by _LAM_UP; an
+# accepted one divides it by _LAM_DOWN, and below _LAM_ZERO it returns to 0.
+_LAM_START = 1e-3
+_LAM_UP = 10.0
+_LAM_DOWN = 10.0
+_LAM_ZERO = 1e-7
+_LAM_GIVE_UP = 1e16
+# Added to the unit-diagonal scaled normal matrix so the batched solve never
+# meets an exactly singular matrix (a parameter the data do not constrain at
+# all, e.g. the energy of a state with zero amplitude). It changes the step,
+# never the fixed point.
+_REGULARISATION = 1e-14
+# The rounding floor of chi2 is estimated as this many units of round-off of
+# |r| * | |L^{-1}| |y| | (see the module notes).
+_ROUNDING_UNITS = 8.0
+
+
+class BatchedModel(Protocol):
+    """What :func:`batched_refits` needs of a model (CorrelatorModel has it)."""
+
+    n_params: int
+    physical_names: tuple[str, ...]
+
+    def predict(self, theta: np.ndarray) -> np.ndarray: ...
+    def jacobian(self, theta: np.ndarray) -> np.ndarray: ...
+    def to_physical(self, theta: np.ndarray) -> np.ndarray: ...
+    def physical_jacobian(self, theta: np.ndarray) -> np.ndarray: ...
+
+
+def batched_cholesky(cov_samples: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Lower Cholesky factors of a stack of covariance matrices.
+
+    Parameters
+    ----------
+    cov_samples : ndarray, shape (S, n, n)
+        Symmetric covariance matrices, e.g. one per jackknife sample.
+
+    Returns
+    -------
+    chol : ndarray, shape (S, n, n)
+        ``chol[s] @ chol[s].T == cov_samples[s]``, lower triangular. Rows of
+        ``ok == False`` are filled with NaN.
+    ok : ndarray of bool, shape (S,)
+        False where the matrix holds non-finite values or is not positive
+        definite; such a sample cannot be fitted with its own covariance.
+
+    Notes
+    -----
+    The whole stack is factorised in one call; only when that call reports a
+    failure is the stack factorised one matrix at a time, to find which
+    matrices failed.
+    """
+    cov = np.asarray(cov_samples, dtype=float)
+    if cov.ndim != 3 or cov.shape[1] != cov.shape[2]:
+        raise ValueError(f"cov_samples must have shape (S, n, n), got {cov.shape}")
+    ok = np.isfinite(cov).all(axis=(1, 2))
+    work = np.where(ok[:, None, None], cov, np.eye(cov.shape[1]))
+    try:
+        chol = np.linalg.cholesky(work)
+    except np.linalg.LinAlgError:
+        chol = np.zeros_like(work)
+        for s in range(work.shape[0]):
+            try:
+                chol[s] = np.linalg.cholesky(work[s])
+            except np.linalg.LinAlgError:
+                ok[s] = False
+    # A zero or negative diagonal (semi-definite input let through) cannot whiten.
+    ok &= np.all(np.diagonal(chol, axis1=1, axis2=2) > 0, axis=1)
+    ok &= np.isfinite(chol).all(axis=(1, 2))
+    chol[~ok] = np.nan
+    return chol, ok
+
+
+def whitening_matrices(chol: np.ndarray) -> np.ndarray:
+    """Inverses of lower Cholesky factors: the matrices that whiten residuals.
+
+    Parameters
+    ----------
+    chol : ndarray, shape (n, n) or (S, n, n)
+        Lower Cholesky factor(s) ``L`` of the covariance, ``C = L L^T``.
+
+    Returns
+    -------
+    ndarray, same shape
+        ``L^{-1}`` (lower triangular), so that
+        ``|L^{-1} (f - y)|^2 = (f - y)^T C^{-1} (f - y)``. NaN for a factor
+        that holds non-finite values or a zero on its diagonal.
+
+    Notes
+    -----
+    Forming ``L^{-1}`` once turns the whitening of every residual vector and
+    Jacobian of every iteration into a matrix product.
+    """
+    chol = np.asarray(chol, dtype=float)
+    if chol.ndim not in (2, 3) or chol.shape[-1] != chol.shape[-2]:
+        raise ValueError(f"a Cholesky factor must have shape (n, n) or (S, n, n), "
+                         f"got {chol.shape}")
+    stack = chol[None] if chol.ndim == 2 else chol
+    out = np.full(stack.shape, np.nan)
+    good = np.isfinite(stack).all(axis=(1, 2))
+    good &= np.all(np.diagonal(stack, axis1=1, axis2=2) != 0, axis=1)
+    for s in np.flatnonzero(good):
+        inv, info = scipy.linalg.lapack.dtrtri(np.tril(stack[s]), lower=1)
+        if info == 0:
+            out[s] = np.tril(inv)
+    return out[0] if chol.ndim == 2 else out
+
+
+class _Stack:
+    """Whitened residuals and normal equations of the samples still iterating."""
+
+    def __init__(self, model: BatchedModel, y: np.ndarray, winv: np.ndarray,
+                 prior: tuple[np.ndarray, np.ndarray, np.ndarray] | None) -> None:
+        self.model = model
+        self.y = y                # (m, n)
+        self.winv = winv          # (n, n) shared, or (m, n, n) per sample
+        self.prior = prior        # (index, mean, width) or None
+
+    def keep(self, rows: np.ndarray) -> _Stack:
+        winv = self.winv if self.winv.ndim == 2 else self.winv[rows]
+        return _Stack(self.model, self.y[rows], winv, self.prior)
+
+    def _winv(self, rows: np.ndarray | None) -> np.ndarray:
+        if rows is None or self.winv.ndim == 2:
+            return self.winv
+        return self.winv[rows]
+
+    def residuals(self, theta: np.ndarray, rows: np.ndarray | None = None
+                  ) -> tuple[np.ndarray, np.ndarray | None, np.ndarray]:
+        """Whitened data residuals (m, n), prior residuals (m, k) and chi2 (m,)."""
+        y = self.y if rows is None else self.y[rows]
+        winv = self._winv(rows)
+        d = self.model.predict(theta) - y
+        r = d @ winv.T if winv.ndim == 2 else np.matmul(winv, d[:, :, None])[:, :, 0]
+        chi2 = np.einsum("mi,mi->m", r, r)
+        rp = None
+        if self.prior is not None:
+            index, mean, width = self.prior
+            rp = (self.model.to_physical(theta)[:, index] - mean) / width
+            chi2 += np.einsum("mk,mk->m", rp, rp)
+        return r, rp, chi2
+
+    def whitened_jacobian(self, theta: np.ndarray, rows: np.ndarray | None = None
+                          ) -> tuple[np.ndarray, np.ndarray | None]:
+        """Transposed whitened Jacobian (m, p, n) and prior Jacobian (m, k, p)."""
+        winv = self._winv(rows)
+        jac = self.model.jacobian(theta)                        # (m, n, p)
+        m, n, p = jac.shape
+        if winv.ndim == 2:
+            # One matrix product for the whole stack: (m p, n) @ (n, n).
+            jw = (jac.transpose(0, 2, 1).reshape(m * p, n) @ winv.T).reshape(m, p, n)
+        else:
+            jw = np.matmul(jac.transpose(0, 2, 1), winv.transpose(0, 2, 1))
+        jp = None
+        if self.prior is not None:
+            index, _, width = self.prior
+            jp = self.model.physical_jacobian(theta)[:, index, :] / width[:, None]
+        return jw, jp
+
+    @staticmethod
+    def normal(jw: np.ndarray, jp: np.ndarray | None, r: np.ndarray,
+               rp: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
+        """Normal matrix J^T J (m, p, p) and gradient J^T r (m, p)."""
+        a = np.matmul(jw, jw.transpose(0, 2, 1))
+        g = np.einsum("mpi,mi->mp", jw, r)
+        if jp is not None:
+            a += np.matmul(jp.transpose(0, 2, 1), jp)
+            g += np.einsum("mkp,mk->mp", jp, rp)
+        return a, g
+
+
+def _damped_steps(a: np.ndarray, g: np.ndarray, lam: np.ndarray
+                  ) -> tuple[np.ndarray, np.ndarray]:
+    """Solve ``(A + lam diag A) delta = -g`` per sample; also return ``D = sqrt(diag A)``.
+
+    The system is solved in the scaled variables ``D delta`` (unit diagonal),
+    where the Marquardt damping is ``lam * I``.
+    """
+    d = np.sqrt(np.diagonal(a, axis1=1, axis2=2))
+    d = np.where(d > 0, d, 1.0)
+    scaled = a / (d[:, :, None] * d[:, None, :])
+    idx = np.arange(a.shape[-1])
+    scaled[:, idx, idx] += (lam + _REGULARISATION)[:, None]
+    step = np.linalg.solve(scaled, (-g / d)[:, :, None])[:, :, 0] / d
+    return step, d
+
+
+def _finite_rows(*arrays: np.ndarray | None) -> np.ndarray:
+    ok = None
+    for arr in arrays:
+        if arr is None:
+            continue
+        f = np.isfinite(arr).reshape(arr.shape[0], -1).all(axis=1)
+        ok = f if ok is None else ok & f
+    return ok
+
+
+def batched_refits(y_samples: np.ndarray, model: BatchedModel, start: np.ndarray, *,
+                   chol: np.ndarray | None = None, chol_samples: np.ndarray | None = None,
+                   priors: Mapping[str, Any] | None = None,
+                   bounds: Mapping[str, Any] | None = None,
+                   max_iter: int = 100, xtol: float = 1e-12, ftol: float = 1e-14,
+                   compact: bool = True) -> tuple[np.ndarray, np.ndarray]:
+    """Refit a correlated chi-square fit on every jackknife sample at once.
+
+    Levenberg-Marquardt on the whole stack of samples: each iteration makes one
+    batched model evaluation, one batched Jacobian and one batched solve of the
+    damped normal equations ``(J^T J + lam diag(J^T J)) delta = -J^T r``; each
+    sample has its own damping ``lam``, accept/reject decision and convergence
+    test, and a sample that has converged (or failed) is no longer updated.
+
+    Parameters
+    ----------
+    y_samples : ndarray, shape (S, n)
+        Data of each jackknife sample at the fit's points (all observables
+        concatenated in the model's order).
+    model : CorrelatorModel
+        Anything with batched ``predict(theta (m, p)) -> (m, n)``,
+        ``jacobian(theta) -> (m, n, p)`` (derivative of the prediction),
+        ``to_physical`` and ``physical_jacobian`` (used with priors), and
+        ``physical_names``; bounds need a :class:`CorrelatorModel`.
+    start : ndarray, shape (p,) or (S, p)
+        Internal parameters to start from: the central fit (the usual warm
+        start), or one start per sample.
+    chol : ndarray, shape (n, n), optional
+        Lower Cholesky factor of the frozen covariance shared by all samples.
+    chol_samples : ndarray, shape (S, n, n), optional
+        One lower Cholesky factor per sample (see :func:`batched_cholesky`); a
+        sample whose factor holds NaN is reported not converged. Give exactly
+        one of ``chol`` and ``chol_samples``.
+    priors : mapping, optional
+        Reported parameter name -> ``Prior`` (``.mean``, ``.width``) or
+        ``(mean, width)``; adds ``((P_k - mean) / width)^2`` to chi2.
+    bounds : mapping, optional
+        Reported parameter name -> ``(lower, upper)`` (either may be None),
+        mapped to internal parameters as the central fit does. A sample whose
+        result lies on a bound is reported not converged.
+    max_iter : int, optional
+        Maximum number of trial steps per sample.
+    xtol : float, optional
+        Converged when an accepted Gauss-Newton step, or the step after it as
+        extrapolated from the observed rate of convergence, is at most
+        ``xtol * (|D theta| + xtol)`` in the scaled norm ``|D delta|``,
+        ``D = sqrt(diag(J^T J))``. Also converged when the steps stop
+        shrinking below the rounding floor of chi2 (round-off reached).
+    ftol : float, optional
+        Converged also when an accepted Gauss-Newton step lowers chi2 by at
+        most ``ftol * chi2`` and was predicted to; applied only where
+        ``ftol * chi2`` is above the rounding floor of chi2, since below it a
+        change of chi2 is not measurable.
+    compact : bool, optional
+        Drop finished samples from the working arrays (the default), or keep
+        the arrays at full size and only stop updating finished samples. The
+        results are identical; ``benchmarks/run_benchmarks.py`` times both.
+
+    Returns
+    -------
+    theta : ndarray, shape (S, p)
+        Internal parameters of each refit. Where not converged this is the
+        last accepted point (the start if none was accepted).
+    converged : ndarray of bool, shape (S,)
+        False where the test was not met within ``max_iter``, where values
+        became non-finite (NaN data, overflow, no usable covariance factor),
+        the damping grew without bound, or the result lies on a bound.
+
+    Notes
+    -----
+    When ``start`` has shape ``(p,)`` every sample starts at the same point, so
+    the first normal equations are shared and formed once. The convergence
+    tests apply only to undamped steps, so a heavily damped (hence short) step
+    is never taken for convergence. Damping never moves the fixed point: a
+    converged sample is at a zero of the chi2 gradient, the point any
+    least-squares minimiser converges to from the same start.
+
+    References
+    ----------
+    K. Levenberg, Quart. Appl. Math. 2 (1944) 164.
+    D. W. Marquardt, J. Soc. Indust. Appl. Math. 11 (1963) 431.
+    J. J. More, Lecture Notes in Mathematics 630 (1978) 105.
+    """
+    y = np.asarray(y_samples, dtype=float)
+    if y.ndim != 2:
+        raise ValueError(f"y_samples must have shape (S, n), got {y.shape}")
+    n_samples, n_points = y.shape
+    p = int(model.n_params)
+    start = np.asarray(start, dtype=float)
+    shared_start = start.shape == (p,)
+    if not shared_start and start.shape != (n_samples, p):
+        raise ValueError(f"start must have shape ({p},) or ({n_samples}, {p}), "
+                         f"got {start.shape}")
+    theta = np.array(np.broadcast_to(start, (n_samples, p)), dtype=float)
+    converged = np.zeros(n_samples, dtype=bool)
+    if (chol is None) == (chol_samples is None):
+        raise ValueError("give exactly one of chol (frozen covariance) and "
+                         "chol_samples (one covariance per sample)")
+    if chol is not None:
+        chol = np.asarray(chol, dtype=float)
+        if chol.shape != (n_points, n_points):
+            raise ValueError(f"chol must have shape ({n_points}, {n_points}), "
+                             f"got {chol.shape}")
+        winv = whitening_matrices(chol)
+        usable = np.full(n_samples, bool(np.isfinite(winv).all()))
+    else:
+        chol_samples = np.asarray(chol_samples, dtype=float)
+        if chol_samples.shape != (n_samples, n_points, n_points):
+            raise ValueError(f"chol_samples must have shape ({n_samples}, {n_points}, "
+                             f"{n_points}), got {chol_samples.shape}")
+        winv = whitening_matrices(chol_samples)
+        usable = np.isfinite(winv).all(axis=(1, 2))
+    usable &= np.isfinite(y).all(axis=1) & np.isfinite(theta).all(axis=1)
+    index, mean, width = prior_terms(model, priors)
+    prior = (index, mean, width) if index.size else None
+    box = internal_bounds(model, bounds) if bounds else None
+    if box is not None and not (np.isfinite(box[0]).any() or np.isfinite(box[1]).any()):
+        box = None
+    rows = np.flatnonzero(usable)      # output row of each working sample
+    if max_iter < 1 or rows.size == 0:
+        return theta, converged
+
+    with np.errstate(all="ignore"):
+        th = theta[rows]
+        if box is not None:
+            th = np.clip(th, box[0], box[1])
+            shared_start = shared_start and rows.size == n_samples
+        stack = _Stack(model, y[rows], winv if winv.ndim == 2 else winv[rows], prior)
+        if shared_start and winv.ndim == 2:
+            # One point for all: residuals differ only through the data, and
+            # the normal matrix is common.
+            one = th[:1]
+            f0 = model.predict(one)[0]
+            r = (f0 - stack.y) @ winv.T
+            chi2 = np.einsum("mi,mi->m", r, r)
+            jw1, jp1 = stack.whitened_jacobian(one)
+            rp = None
+            a1 = np.matmul(jw1, jw1.transpose(0, 2, 1))
+            g = r @ jw1[0].T
+            if prior is not None:
+                rp = np.broadcast_to((model.to_physical(one)[:, index] - mean) / width,
+                                     (rows.size, index.size)).copy()
+                chi2 += np.einsum("mk,mk->m", rp, rp)
+                a1 += np.matmul(jp1.transpose(0, 2, 1), jp1)
+                g += rp @ jp1[0]
+            a = np.broadcast_to(a1, (rows.size, p, p)).copy()
+        else:
+            r, rp, chi2 = stack.residuals(th)
+            jw, jp = stack.whitened_jacobian(th)
+            a, g = stack.normal(jw, jp, r, rp)
+        # |L^{-1}| |y| scales the round-off of the whitened residuals.
+        if winv.ndim == 2:
+            zscale = np.abs(stack.y) @ np.abs(winv).T
+        else:
+            zscale = np.matmul(np.abs(stack.winv), np.abs(stack.y)[:, :, None])[:, :, 0]
+        zscale = np.sqrt(np.einsum("mi,mi->m", zscale, zscale))
+        eps = np.finfo(float).eps
+
+        m = rows.size
+        lam = np.zeros(m)
+        last_gn = np.full(m, np.inf)     # scaled size of the last accepted GN step
+        last_ratio = np.ones(m)          # its ratio to the one before
+        done = ~(np.isfinite(chi2) & _finite_rows(a, g))
+        ok = np.zeros(m, dtype=bool)
+        eye = np.eye(p)
+
+        for _ in range(max_iter):
+            live = ~done
+            if not live.any():
+                break
+            if live.all():
+                a_s, g_s = a, g
+            else:
+                a_s = np.where(live[:, None, None], a, eye)
+                g_s = np.where(live[:, None], g, 0.0)
+            step, dscale = _damped_steps(a_s, g_s, lam)
+            step[done] = 0.0
+            trial = th + step
+            if box is not None:
+                trial = np.clip(trial, box[0], box[1])
+                step = trial - th
+            r_t, rp_t, chi2_t = stack.residuals(trial)
+            finite_t = np.isfinite(chi2_t)
+
+            gn = live & (lam == 0.0)
+            ds = dscale * step
+            step_norm = np.sqrt(np.einsum("mp,mp->m", ds, ds))
+            dt = dscale * th
+            tolerance = xtol * (np.sqrt(np.einsum("mp,mp->m", dt, dt)) + xtol)
+            # Predicted gain of the quadratic model chi2 + 2 g.delta + delta.A.delta;
+            # with (A + (lam + reg) D^2) delta = -g it is -g.delta + (lam + reg)|D delta|^2.
+            if box is None:
+                pred = (-np.einsum("mp,mp->m", g_s, step)
+                        + (lam + _REGULARISATION) * step_norm ** 2)
+            else:   # the step may have been cut by the box
+                pred = -(2.0 * np.einsum("mp,mp->m", g_s, step)
+                         + np.einsum("mp,mpq,mq->m", step, a_s, step))
+            floor = _ROUNDING_UNITS * eps * (np.sqrt(chi2) * zscale + chi2)
+            # A step whose predicted gain is below the rounding floor cannot be
+            # judged by chi2: take it on the quadratic model's word.
+            unresolved = finite_t & (pred <= floor) & (chi2_t <= chi2 + 4.0 * floor)
+            accept = live & finite_t & ((chi2_t < chi2) | unresolved)
+            # Observed rate of convergence (the larger of the last two ratios of
+            # successive Gauss-Newton steps): the next step is about rate * this one.
+            seen = np.isfinite(last_gn)
+            ratio = np.where(seen, np.minimum(step_norm / last_gn, 1.0), 1.0)
+            rate = np.maximum(ratio, last_ratio)
+            small = (step_norm <= tolerance) | (step_norm * rate <= tolerance)
+            stalled = unresolved & seen & (ratio >= 0.5)
+            gain_floor = ftol * chi2
+            small_gain = ((gain_floor > floor) & (pred <= gain_floor)
+                          & (chi2 - chi2_t <= gain_floor))
+            conv = gn & accept & (small | stalled | small_gain)
+            last_ratio = np.where(gn & accept, ratio, last_ratio)
+            last_gn = np.where(gn & accept, step_norm, last_gn)
+
+            if accept.all():
+                th, r, rp, chi2 = trial, r_t, rp_t, chi2_t
+            elif accept.any():
+                th = np.where(accept[:, None], trial, th)
+                r = np.where(accept[:, None], r_t, r)
+                if rp is not None:
+                    rp = np.where(accept[:, None], rp_t, rp)
+                chi2 = np.where(accept, chi2_t, chi2)
+            lam = np.where(accept, lam / _LAM_DOWN, np.where(lam == 0.0, _LAM_START,
+                                                             lam * _LAM_UP))
+            lam[lam < _LAM_ZERO] = 0.0
+            ok |= conv
+            done |= conv | (live & (lam > _LAM_GIVE_UP))
+
+            # Fresh normal equations where a step was accepted and work goes on.
+            need = accept & ~done
+            if need.all():
+                jw, jp = stack.whitened_jacobian(th)
+                a, g = stack.normal(jw, jp, r, rp)
+            elif need.any():
+                idx = np.flatnonzero(need)
+                jw, jp = stack.whitened_jacobian(th[idx], rows=idx)
+                a_n, g_n = stack.normal(jw, jp, r[idx], None if rp is None else rp[idx])
+                a, g = a.copy(), g.copy()
+                a[idx], g[idx] = a_n, g_n
+            else:
+                continue
+            bad = need & ~_finite_rows(a, g)
+            done |= bad
+
+            if compact and done.any():
+                fin = np.flatnonzero(done)
+                theta[rows[fin]] = th[fin]
+                converged[rows[fin]] = ok[fin]
+                keep = np.flatnonzero(~done)
+                rows = rows[keep]
+                stack = stack.keep(keep)
+                th, r, chi2, a, g = th[keep], r[keep], chi2[keep], a[keep], g[keep]
+                rp = None if rp is None else rp[keep]
+                lam, zscale = lam[keep], zscale[keep]
+                last_gn, last_ratio = last_gn[keep], last_ratio[keep]
+                ok, done = ok[keep], done[keep]
+
+        theta[rows] = th
+        converged[rows] = ok
+        converged &= np.isfinite(theta).all(axis=1)
+        if box is not None:
+            # On a face of the box the minimum has active constraints, which
+            # this engine does not solve for: leave it to the bounded minimiser.
+            lo, hi = box
+            span = np.where(np.isfinite(hi - lo), hi - lo, np.abs(theta) + 1.0)
+            on_bound = np.any((theta <= lo + 1e-10 * span) | (theta >= hi - 1e-10 * span),
+                              axis=1)
+            converged &= ~on_bound
+    return theta, converged
