@@ -9,7 +9,7 @@ import sys
 import numpy as np
 import pytest
 
-from plateaufit.errors import DataError, SpecError
+from plateaufit.errors import DataError, FitError, SpecError
 from plateaufit.parallel import ProcessExecutor, SerialExecutor, make_executor
 
 
@@ -102,3 +102,17 @@ def test_progress_bar_stays_silent_when_stderr_is_not_a_terminal(capsys):
     with make_executor(1) as ex:
         assert ex.map(operator.neg, range(5), progress=True, desc="scan") == [0, -1, -2, -3, -4]
     assert capsys.readouterr().err == ""
+
+
+def die_abruptly(item):
+    if item == 3:
+        os._exit(1)   # a worker killed from outside looks the same to the pool
+    return item
+
+
+def test_a_worker_that_dies_gives_a_clear_error_not_a_hang():
+    with make_executor(jobs=2) as ex:
+        with pytest.raises(FitError) as info:
+            ex.map(die_abruptly, range(8))
+    assert info.value.where == "--jobs"
+    assert "--jobs 1" in info.value.message

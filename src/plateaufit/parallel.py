@@ -34,7 +34,7 @@ import sys
 from collections.abc import Callable, Iterable, Sequence
 from typing import Any
 
-from plateaufit.errors import PlateaufitError, SpecError
+from plateaufit.errors import FitError, PlateaufitError, SpecError
 
 #: Marker for "no shared data": ``fn`` is then called as ``fn(item)``.
 _NO_SHARED = object()
@@ -199,6 +199,7 @@ class ProcessExecutor(Executor):
         if len(items) <= 1:
             return super().map(fn, items, shared=shared, progress=progress, desc=desc)
         from concurrent.futures import FIRST_COMPLETED, wait
+        from concurrent.futures.process import BrokenProcessPool
 
         chunks = _split(items, self.n_workers * _CHUNKS_PER_WORKER)
         pool = self._get_pool()
@@ -213,6 +214,12 @@ class ProcessExecutor(Executor):
                 for fut in done:
                     bar.update(sizes[fut])
             return _collect(fut.result() for fut in futures)
+        except BrokenProcessPool:
+            self._pool = None
+            raise FitError("--jobs", "a worker process stopped abruptly (killed, out of memory, "
+                                     "or started from a script without an "
+                                     "`if __name__ == \"__main__\":` guard); rerun with "
+                                     "--jobs 1 (jobs=1) to run in-process") from None
         except BaseException:
             for fut in futures:
                 fut.cancel()
