@@ -64,13 +64,13 @@ from plateaufit.fit.correlated import internal_bounds, prior_terms
 
 __all__ = ["batched_cholesky", "batched_refits", "whitening_matrices"]
 
-# Damping schedule (Marquardt 1963). The first trial of every sample is a pure
-# Gauss-Newton step (lam = 0; the warm start is close to the minimum). A
-# rejected step sets the damping to _LAM_START or multiplies it by _LAM_UP; an
-# accepted one divides it by _LAM_DOWN, and below _LAM_ZERO it returns to 0.
+# Damping schedule. The first trial of every sample is a pure Gauss-Newton
+# step (lam = 0; the warm start is close to the minimum). A rejected step sets
+# the damping to _LAM_START, or multiplies it by nu (2, doubling on each further
+# rejection); an accepted damped step scales it by max(1/3, 1 - (2 rho - 1)^3),
+# rho the ratio of the actual to the predicted gain (Nielsen 1999), and below
+# _LAM_ZERO the damping returns to 0 (Gauss-Newton).
 _LAM_START = 1e-3
-_LAM_UP = 10.0
-_LAM_DOWN = 10.0
 _LAM_ZERO = 1e-7
 _LAM_GIVE_UP = 1e16
 # Added to the unit-diagonal scaled normal matrix so the batched solve never
@@ -193,12 +193,11 @@ class _Stack:
             return self.winv
         return self.winv[rows]
 
-    def residuals(self, theta: np.ndarray, rows: np.ndarray | None = None
+    def residuals(self, theta: np.ndarray
                   ) -> tuple[np.ndarray, np.ndarray | None, np.ndarray]:
         """Whitened data residuals (m, n), prior residuals (m, k) and chi2 (m,)."""
-        y = self.y if rows is None else self.y[rows]
-        winv = self._winv(rows)
-        d = self.model.predict(theta) - y
+        d = self.model.predict(theta) - self.y
+        winv = self.winv
         r = d @ winv.T if winv.ndim == 2 else np.matmul(winv, d[:, :, None])[:, :, 0]
         chi2 = np.einsum("mi,mi->m", r, r)
         rp = None
@@ -237,30 +236,54 @@ class _Stack:
         return a, g
 
 
-def _damped_steps(a: np.ndarray, g: np.ndarray, lam: np.ndarray
-                  ) -> tuple[np.ndarray, np.ndarray]:
-    """Solve ``(A + lam diag A) delta = -g`` per sample; also return ``D = sqrt(diag A)``.
+class _Linearisation:
+    """What one iteration needs of the normal equations at the current point.
 
-    The system is solved in the scaled variables ``D delta`` (unit diagonal),
-    where the Marquardt damping is ``lam * I``.
+    ``scaled`` is ``A`` in the variables ``D delta`` (``D = sqrt(diag A)``, unit
+    diagonal), in which Marquardt's damping ``lam diag(A)`` is ``lam I``;
+    ``rhs = -g / D``; ``tol2`` is the squared step tolerance
+    ``(xtol (|D theta| + xtol))^2``; ``finite`` flags usable rows.
     """
-    d = np.sqrt(np.diagonal(a, axis1=1, axis2=2))
-    d = np.where(d > 0, d, 1.0)
-    scaled = a / (d[:, :, None] * d[:, None, :])
-    idx = np.arange(a.shape[-1])
-    scaled[:, idx, idx] += (lam + _REGULARISATION)[:, None]
-    step = np.linalg.solve(scaled, (-g / d)[:, :, None])[:, :, 0] / d
-    return step, d
 
+    __slots__ = ("d", "scaled", "rhs", "tol2", "finite")
 
-def _finite_rows(*arrays: np.ndarray | None) -> np.ndarray:
-    ok = None
-    for arr in arrays:
-        if arr is None:
-            continue
-        f = np.isfinite(arr).reshape(arr.shape[0], -1).all(axis=1)
-        ok = f if ok is None else ok & f
-    return ok
+    def __init__(self, a: np.ndarray, g: np.ndarray, theta: np.ndarray, xtol: float) -> None:
+        d = np.sqrt(np.diagonal(a, axis1=1, axis2=2))
+        self.finite = np.isfinite(d.sum(axis=1) + g.sum(axis=1) + a.sum(axis=(1, 2)))
+        d = np.where(d > 0, d, 1.0)
+        self.d = d
+        self.scaled = a / (d[:, :, None] * d[:, None, :])
+        self.rhs = -g / d
+        size = np.sqrt(np.einsum("mp,mp->m", d * theta, d * theta))
+        self.tol2 = (xtol * (size + xtol)) ** 2
+
+    def take(self, rows: np.ndarray) -> None:
+        for name in self.__slots__:
+            setattr(self, name, getattr(self, name)[rows])
+
+    def put(self, rows: np.ndarray, other: _Linearisation) -> None:
+        for name in self.__slots__:
+            getattr(self, name)[rows] = getattr(other, name)
+
+    def steps(self, lam: np.ndarray, damped: bool) -> tuple[np.ndarray, np.ndarray]:
+        """Scaled steps ``z = D delta`` and steps ``delta``."""
+        p = self.scaled.shape[-1]
+        shift = (lam + _REGULARISATION) if damped else _REGULARISATION
+        if p == 1:
+            z = self.rhs / (self.scaled[:, 0] + shift[:, None] if damped
+                            else self.scaled[:, 0] + shift)
+        elif p == 2:
+            # Closed form (unit diagonal): det = (1 + s)^2 - c^2 > 0 for s > 0.
+            c = self.scaled[:, 0, 1]
+            diag = 1.0 + shift
+            det = diag * diag - c * c
+            b0, b1 = self.rhs[:, 0], self.rhs[:, 1]
+            z = np.stack([(diag * b0 - c * b1) / det, (diag * b1 - c * b0) / det], axis=1)
+        else:
+            shift = shift[:, None, None] if damped else shift
+            z = np.linalg.solve(self.scaled + shift * np.eye(p),
+                                self.rhs[:, :, None])[:, :, 0]
+        return z, z / self.d
 
 
 def batched_refits(y_samples: np.ndarray, model: BatchedModel, start: np.ndarray, *,
@@ -386,151 +409,170 @@ def batched_refits(y_samples: np.ndarray, model: BatchedModel, start: np.ndarray
         return theta, converged
 
     with np.errstate(all="ignore"):
-        th = theta[rows]
-        if box is not None:
-            th = np.clip(th, box[0], box[1])
-            shared_start = shared_start and rows.size == n_samples
-        stack = _Stack(model, y[rows], winv if winv.ndim == 2 else winv[rows], prior)
-        if shared_start and winv.ndim == 2:
-            # One point for all: residuals differ only through the data, and
-            # the normal matrix is common.
-            one = th[:1]
-            f0 = model.predict(one)[0]
-            r = (f0 - stack.y) @ winv.T
-            chi2 = np.einsum("mi,mi->m", r, r)
-            jw1, jp1 = stack.whitened_jacobian(one)
-            rp = None
-            a1 = np.matmul(jw1, jw1.transpose(0, 2, 1))
-            g = r @ jw1[0].T
-            if prior is not None:
-                rp = np.broadcast_to((model.to_physical(one)[:, index] - mean) / width,
-                                     (rows.size, index.size)).copy()
-                chi2 += np.einsum("mk,mk->m", rp, rp)
-                a1 += np.matmul(jp1.transpose(0, 2, 1), jp1)
-                g += rp @ jp1[0]
-            a = np.broadcast_to(a1, (rows.size, p, p)).copy()
-        else:
-            r, rp, chi2 = stack.residuals(th)
-            jw, jp = stack.whitened_jacobian(th)
-            a, g = stack.normal(jw, jp, r, rp)
-        # |L^{-1}| |y| scales the round-off of the whitened residuals.
-        if winv.ndim == 2:
-            zscale = np.abs(stack.y) @ np.abs(winv).T
-        else:
-            zscale = np.matmul(np.abs(stack.winv), np.abs(stack.y)[:, :, None])[:, :, 0]
-        zscale = np.sqrt(np.einsum("mi,mi->m", zscale, zscale))
-        eps = np.finfo(float).eps
+        return _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
+                        max_iter, xtol, ftol, compact)
 
-        m = rows.size
-        lam = np.zeros(m)
-        last_gn = np.full(m, np.inf)     # scaled size of the last accepted GN step
-        last_ratio = np.ones(m)          # its ratio to the one before
-        done = ~(np.isfinite(chi2) & _finite_rows(a, g))
-        ok = np.zeros(m, dtype=bool)
-        eye = np.eye(p)
 
-        for _ in range(max_iter):
-            live = ~done
-            if not live.any():
+def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
+             max_iter, xtol, ftol, compact):
+    """The Levenberg-Marquardt loop of :func:`batched_refits` (fills theta, converged)."""
+    p = theta.shape[1]
+    th = theta[rows]
+    if box is not None:
+        th = np.clip(th, box[0], box[1])
+        shared_start = shared_start and rows.size == theta.shape[0]
+    stack = _Stack(model, y[rows], winv if winv.ndim == 2 else winv[rows], prior)
+    if shared_start and winv.ndim == 2:
+        # One point for all: the residuals differ only through the data, and
+        # the normal matrix is common, so the first linearisation is formed once.
+        one = th[:1]
+        r = (model.predict(one)[0] - stack.y) @ winv.T
+        chi2 = np.einsum("mi,mi->m", r, r)
+        jw1, jp1 = stack.whitened_jacobian(one)
+        a1 = np.matmul(jw1, jw1.transpose(0, 2, 1))
+        g = r @ jw1[0].T
+        rp = None
+        if prior is not None:
+            index, mean, width = prior
+            rp0 = (model.to_physical(one)[:, index] - mean) / width
+            rp = np.repeat(rp0, rows.size, axis=0)
+            chi2 += np.einsum("mk,mk->m", rp, rp)
+            a1 += np.matmul(jp1.transpose(0, 2, 1), jp1)
+            g += rp @ jp1[0]
+        lin = _Linearisation(np.repeat(a1, rows.size, axis=0), g, th, xtol)
+    else:
+        r, rp, chi2 = stack.residuals(th)
+        jw, jp = stack.whitened_jacobian(th)
+        lin = _Linearisation(*stack.normal(jw, jp, r, rp), th, xtol)
+    # |L^{-1}| |y| scales the round-off of the whitened residuals (module notes).
+    if winv.ndim == 2:
+        zscale = np.abs(stack.y) @ np.abs(winv).T
+    else:
+        zscale = np.matmul(np.abs(stack.winv), np.abs(stack.y)[:, :, None])[:, :, 0]
+    zscale = np.sqrt(np.einsum("mi,mi->m", zscale, zscale))
+    units = _ROUNDING_UNITS * np.finfo(float).eps
+
+    def floors(chi2, zscale):
+        floor = units * (np.sqrt(chi2) * zscale + chi2)
+        gain = ftol * chi2
+        # the chi2-change test applies only where chi2 can resolve it
+        return floor, np.where(gain > floor, gain, -1.0)
+
+    floor, gain_floor = floors(chi2, zscale)
+    m = rows.size
+    lam = np.zeros(m)
+    nu = np.full(m, 2.0)
+    last2 = np.full(m, np.inf)        # |D delta|^2 of the last accepted GN step
+    last_ratio2 = np.ones(m)          # its ratio to the one before
+    ok = np.zeros(m, dtype=bool)
+    done = ~(np.isfinite(chi2) & lin.finite)
+    damped = False                    # any lam > 0 in the working set
+
+    for _ in range(max_iter):
+        if compact and done.any():
+            fin = np.flatnonzero(done)
+            theta[rows[fin]] = th[fin]
+            converged[rows[fin]] = ok[fin]
+            keep = np.flatnonzero(~done)
+            if keep.size == 0:
+                rows = keep
                 break
-            if live.all():
-                a_s, g_s = a, g
-            else:
-                a_s = np.where(live[:, None, None], a, eye)
-                g_s = np.where(live[:, None], g, 0.0)
-            step, dscale = _damped_steps(a_s, g_s, lam)
+            rows, th, r, chi2 = rows[keep], th[keep], r[keep], chi2[keep]
+            rp = None if rp is None else rp[keep]
+            stack = stack.keep(keep)
+            lin.take(keep)
+            lam, nu, zscale, floor, gain_floor = (lam[keep], nu[keep], zscale[keep],
+                                                  floor[keep], gain_floor[keep])
+            last2, last_ratio2, ok, done = last2[keep], last_ratio2[keep], ok[keep], done[keep]
+        elif done.all():
+            break
+        z, step = lin.steps(lam, damped)
+        if not compact:
+            z[done] = 0.0
             step[done] = 0.0
-            trial = th + step
-            if box is not None:
-                trial = np.clip(trial, box[0], box[1])
-                step = trial - th
-            r_t, rp_t, chi2_t = stack.residuals(trial)
-            finite_t = np.isfinite(chi2_t)
+        trial = th + step
+        if box is not None:
+            trial = np.clip(trial, box[0], box[1])
+            step = trial - th
+            z = lin.d * step
+        r_t, rp_t, chi2_t = stack.residuals(trial)
 
-            gn = live & (lam == 0.0)
-            ds = dscale * step
-            step_norm = np.sqrt(np.einsum("mp,mp->m", ds, ds))
-            dt = dscale * th
-            tolerance = xtol * (np.sqrt(np.einsum("mp,mp->m", dt, dt)) + xtol)
-            # Predicted gain of the quadratic model chi2 + 2 g.delta + delta.A.delta;
-            # with (A + (lam + reg) D^2) delta = -g it is -g.delta + (lam + reg)|D delta|^2.
-            if box is None:
-                pred = (-np.einsum("mp,mp->m", g_s, step)
-                        + (lam + _REGULARISATION) * step_norm ** 2)
-            else:   # the step may have been cut by the box
-                pred = -(2.0 * np.einsum("mp,mp->m", g_s, step)
-                         + np.einsum("mp,mpq,mq->m", step, a_s, step))
-            floor = _ROUNDING_UNITS * eps * (np.sqrt(chi2) * zscale + chi2)
-            # A step whose predicted gain is below the rounding floor cannot be
-            # judged by chi2: take it on the quadratic model's word.
-            unresolved = finite_t & (pred <= floor) & (chi2_t <= chi2 + 4.0 * floor)
-            accept = live & finite_t & ((chi2_t < chi2) | unresolved)
-            # Observed rate of convergence (the larger of the last two ratios of
-            # successive Gauss-Newton steps): the next step is about rate * this one.
-            seen = np.isfinite(last_gn)
-            ratio = np.where(seen, np.minimum(step_norm / last_gn, 1.0), 1.0)
-            rate = np.maximum(ratio, last_ratio)
-            small = (step_norm <= tolerance) | (step_norm * rate <= tolerance)
-            stalled = unresolved & seen & (ratio >= 0.5)
-            gain_floor = ftol * chi2
-            small_gain = ((gain_floor > floor) & (pred <= gain_floor)
-                          & (chi2 - chi2_t <= gain_floor))
-            conv = gn & accept & (small | stalled | small_gain)
-            last_ratio = np.where(gn & accept, ratio, last_ratio)
-            last_gn = np.where(gn & accept, step_norm, last_gn)
+        zz = np.einsum("mp,mp->m", z, z)                           # |D delta|^2
+        # Predicted gain of the quadratic model chi2 + 2 g.delta + delta.A.delta;
+        # with (A + (lam + reg) D^2) delta = -g it is -g.delta + (lam + reg)|D delta|^2.
+        pred = np.einsum("mp,mp->m", lin.rhs, z) + (lam + _REGULARISATION) * zz
+        if box is not None:     # the step may have been cut by the box
+            pred = 2.0 * np.einsum("mp,mp->m", lin.rhs, z) - np.einsum(
+                "mp,mpq,mq->m", z, lin.scaled, z)
+        diff = chi2 - chi2_t                                       # NaN for a bad trial
+        # A step whose predicted gain is below the rounding floor of chi2
+        # cannot be judged by chi2: take it on the quadratic model's word.
+        unresolved = (pred <= floor) & (diff >= -4.0 * floor)
+        accept = (diff > 0) | unresolved
+        # Convergence, on undamped steps only. The next step is about
+        # rate * this one, rate the larger of the last two ratios of
+        # successive Gauss-Newton steps (none known: no extrapolation).
+        gn_accept = accept & (lam == 0.0)
+        ratio2 = np.minimum(zz / last2, 1.0)          # 0 when no step is known yet
+        small = zz * np.maximum(ratio2, last_ratio2) <= lin.tol2
+        small |= unresolved & (ratio2 >= 0.25)                    # round-off reached
+        small |= (pred <= gain_floor) & (diff <= gain_floor)      # ftol test
+        conv = gn_accept & small
+        if not compact:
+            conv &= ~done
+            accept &= ~done
+        last_ratio2 = np.where(gn_accept, np.where(ratio2 > 0, ratio2, 1.0), last_ratio2)
+        last2 = np.where(gn_accept, zz, last2)
 
-            if accept.all():
-                th, r, rp, chi2 = trial, r_t, rp_t, chi2_t
-            elif accept.any():
-                th = np.where(accept[:, None], trial, th)
-                r = np.where(accept[:, None], r_t, r)
-                if rp is not None:
-                    rp = np.where(accept[:, None], rp_t, rp)
-                chi2 = np.where(accept, chi2_t, chi2)
-            lam = np.where(accept, lam / _LAM_DOWN, np.where(lam == 0.0, _LAM_START,
-                                                             lam * _LAM_UP))
+        all_accepted = bool(accept.all())
+        if all_accepted:
+            th, r, rp, chi2 = trial, r_t, rp_t, chi2_t
+        elif accept.any():
+            th = np.where(accept[:, None], trial, th)
+            r = np.where(accept[:, None], r_t, r)
+            if rp is not None:
+                rp = np.where(accept[:, None], rp_t, rp)
+            chi2 = np.where(accept, chi2_t, chi2)
+        if damped or not all_accepted:
+            # Nielsen's update on accepted damped steps; nu-fold increase on rejection.
+            rho = np.where(unresolved, 1.0, diff / pred)
+            shrink = np.maximum(1.0 / 3.0, 1.0 - (2.0 * np.clip(rho, 0.0, 1.0) - 1.0) ** 3)
+            lam = np.where(accept, lam * shrink, np.where(lam == 0.0, _LAM_START, lam * nu))
+            nu = np.where(accept | (lam == _LAM_START), 2.0, 2.0 * nu)
             lam[lam < _LAM_ZERO] = 0.0
-            ok |= conv
-            done |= conv | (live & (lam > _LAM_GIVE_UP))
+            damped = bool(lam.any())
+            done |= lam > _LAM_GIVE_UP
+        ok |= conv
+        done |= conv
 
-            # Fresh normal equations where a step was accepted and work goes on.
-            need = accept & ~done
-            if need.all():
-                jw, jp = stack.whitened_jacobian(th)
-                a, g = stack.normal(jw, jp, r, rp)
-            elif need.any():
-                idx = np.flatnonzero(need)
-                jw, jp = stack.whitened_jacobian(th[idx], rows=idx)
-                a_n, g_n = stack.normal(jw, jp, r[idx], None if rp is None else rp[idx])
-                a, g = a.copy(), g.copy()
-                a[idx], g[idx] = a_n, g_n
-            else:
-                continue
-            bad = need & ~_finite_rows(a, g)
-            done |= bad
+        # Fresh linearisation where a step was accepted and work goes on.
+        need = accept & ~done
+        if all_accepted and not done.any():
+            jw, jp = stack.whitened_jacobian(th)
+            lin = _Linearisation(*stack.normal(jw, jp, r, rp), th, xtol)
+            floor, gain_floor = floors(chi2, zscale)
+        elif need.any():
+            idx = np.flatnonzero(need)
+            jw, jp = stack.whitened_jacobian(th[idx], rows=idx)
+            fresh = _Linearisation(*stack.normal(jw, jp, r[idx],
+                                                 None if rp is None else rp[idx]),
+                                   th[idx], xtol)
+            lin.put(idx, fresh)
+            floor[idx], gain_floor[idx] = floors(chi2[idx], zscale[idx])
+        else:
+            continue
+        done |= ~lin.finite
 
-            if compact and done.any():
-                fin = np.flatnonzero(done)
-                theta[rows[fin]] = th[fin]
-                converged[rows[fin]] = ok[fin]
-                keep = np.flatnonzero(~done)
-                rows = rows[keep]
-                stack = stack.keep(keep)
-                th, r, chi2, a, g = th[keep], r[keep], chi2[keep], a[keep], g[keep]
-                rp = None if rp is None else rp[keep]
-                lam, zscale = lam[keep], zscale[keep]
-                last_gn, last_ratio = last_gn[keep], last_ratio[keep]
-                ok, done = ok[keep], done[keep]
-
+    if rows.size:
         theta[rows] = th
         converged[rows] = ok
-        converged &= np.isfinite(theta).all(axis=1)
-        if box is not None:
-            # On a face of the box the minimum has active constraints, which
-            # this engine does not solve for: leave it to the bounded minimiser.
-            lo, hi = box
-            span = np.where(np.isfinite(hi - lo), hi - lo, np.abs(theta) + 1.0)
-            on_bound = np.any((theta <= lo + 1e-10 * span) | (theta >= hi - 1e-10 * span),
-                              axis=1)
-            converged &= ~on_bound
+    converged &= np.isfinite(theta).all(axis=1)
+    if box is not None:
+        # On a face of the box the minimum has active constraints, which this
+        # engine does not solve for: leave it to the bounded minimiser.
+        lo, hi = box
+        span = np.where(np.isfinite(hi - lo), hi - lo, np.abs(theta) + 1.0)
+        on_bound = np.any((theta <= lo + 1e-10 * span) | (theta >= hi - 1e-10 * span),
+                          axis=1)
+        converged &= ~on_bound
     return theta, converged
