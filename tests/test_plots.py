@@ -209,7 +209,7 @@ def test_correlation_matrix_is_drawn_with_a_colorbar(results) -> None:
     assert ax.get_xlabel() == "t/a of each data point" and ax.get_ylabel()
     # block ticks name the timeslices of the chosen range
     assert ax.get_xticklabels()[0].get_text() == str(fit["covariance"]["tmin"])
-    assert "0.18" in ax.get_title(loc="left")
+    assert "λ = 0.18" in ax.get_title()
 
 
 def test_eigenvalues_before_and_after_shrinkage_on_log_axis(results) -> None:
@@ -223,6 +223,9 @@ def test_eigenvalues_before_and_after_shrinkage_on_log_axis(results) -> None:
     np.testing.assert_allclose(after.get_ydata(), sorted(cov["eigenvalues"], reverse=True))
     legend = [t.get_text() for t in ax.get_legend().get_texts()]
     assert legend[0].startswith("before shrinkage") and "after shrinkage" in legend[1]
+    title = ax.get_legend().get_title().get_text()
+    assert f"{cov['condition_number_raw']:.3g} before" in title
+    assert f"{cov['condition_number']:.3g} after" in title
 
 
 def test_eigenvalues_at_or_below_zero_are_counted_not_drawn() -> None:

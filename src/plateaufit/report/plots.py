@@ -218,8 +218,16 @@ def plot_effective_mass(fit_name: str, fit: Mapping[str, Any], observable: str,
             lo_y, hi_y = min(lows), max(highs)
             lo_y, hi_y = max(lo_y, e0v - 0.5 * abs(e0v)), min(hi_y, e0v + 0.5 * abs(e0v))
             ax.set_ylim(*_padded(lo_y, hi_y))
-        if t.size:
-            ax.set_xlim(float(np.min(t)) - 0.5, float(np.max(t)) + 0.5)
+        # x range: the timeslices whose point is inside the y range, and the bands
+        y_lo, y_hi = ax.get_ylim()
+        visible = ok & (value >= y_lo) & (value <= y_hi)
+        xs = [float(x) for x in t[visible]] + [float(x) for x in (lo, hi) if x is not None]
+        if xs:
+            ax.set_xlim(min(xs) - 0.5, max(xs) + 0.5)
+        n_hidden = int((ok & ~visible).sum())
+        if n_hidden:
+            ax.text(0.01, 0.02, f"{n_hidden} point(s) outside the range shown",
+                    transform=ax.transAxes, fontsize=6, color="#555555", ha="left", va="bottom")
         ax.set_xlabel("t/a")
         ax.xaxis.set_major_locator(matplotlib.ticker.MaxNLocator(integer=True))
         ax.set_ylabel("a m_eff")
@@ -615,8 +623,8 @@ def plot_correlation(fit_name: str, fit: Mapping[str, Any]) -> Figure:
         else:
             ax.set_xlabel("data point index")
             ax.set_ylabel("data point index")
-        shr = f", shrinkage λ = {lam:.2f}" if math.isfinite(lam) else ""
-        ax.set_title(_text(f"{_short(fit_name)}: correlation matrix{shr}"), loc="left")
+        shr = f"\nafter shrinkage, λ = {lam:.2f}" if math.isfinite(lam) else ""
+        ax.set_title(_text(f"{_short(fit_name)}: correlation matrix{shr}"))
     return fig
 
 
@@ -657,21 +665,23 @@ def plot_eigenvalues(fit_name: str, fit: Mapping[str, Any]) -> Figure:
             idx = np.arange(1, values.size + 1)
             pos = np.isfinite(values) & (values > 0)
             hidden += int((~pos).sum())
-            kappa = k_raw if label.startswith("before") else k_after
             if label.startswith("after") and math.isfinite(lam):
                 label += f", λ = {lam:.2f}"
-            if math.isfinite(kappa):
-                label += f" (condition number {kappa:.3g})"
             ax.plot(idx[pos], values[pos], linestyle="-", linewidth=0.7, markersize=3,
                     label=label, **style)
         ax.set_yscale("log")
         ax.set_xlabel("eigenvalue index")
         ax.set_ylabel("eigenvalue of the correlation matrix")
         ax.set_title(_text(f"{_short(fit_name)}: eigenvalue spectrum"))
-        ax.legend(loc="upper right", fontsize=6)
+        kappa = None
+        if math.isfinite(k_raw) or math.isfinite(k_after):
+            kappa = f"covariance condition number\n{k_raw:.3g} before, {k_after:.3g} after"
+        legend = ax.legend(loc="upper right", fontsize=6, title=kappa, title_fontsize=6,
+                           alignment="left")
+        legend.get_title().set_color("#555555")
         if hidden:
             ax.text(0.02, 0.03, f"{hidden} eigenvalue(s) ≤ 0 not shown", transform=ax.transAxes,
-                    fontsize=6, color="#555555")
+                    fontsize=6, color="#555555", ha="left", va="bottom")
     return fig
 
 
