@@ -268,7 +268,7 @@ class DaskExecutor(Executor):
         sizes = {fut.key: len(chunk) for fut, chunk in zip(futures, chunks)}
         bar = _progress_bar(len(items), progress, desc)
         try:
-            for fut in as_completed(futures):
+            for fut in as_completed(futures, loop=self._client.loop):
                 bar.update(sizes[fut.key])
             return _collect(self._client.gather(futures))
         except BaseException:
