@@ -306,3 +306,25 @@ def test_plan_skips_parts_the_results_lack(results) -> None:
     assert "kaon.stability" in keys
     # a single chosen fit has no weights plot
     assert "kaon.weights" not in keys
+
+
+def test_sparse_results_still_plot() -> None:
+    # a formula model without E0: the stability plot shows its first parameter; no
+    # p-values, no weights, an effective mass of NaNs only
+    fit = {
+        "observables": ["c"],
+        "chosen": {"method": "single", "tmin": 3, "tmax": 9, "states": 1,
+                   "params": {"m": {"value": 0.4, "error": 0.01}}},
+        "scan": [{"tmin": 3, "tmax": 9, "states": 1, "converged": True, "weight": None,
+                  "p_value": None, "params": {"m": {"value": 0.41, "error": 0.02}}}],
+        "effective_mass": {"c": {"t": [0, 1, 2], "value": [None, None, None],
+                                 "error": [None, None, None], "kind": "log"}},
+    }
+    results = {"ensemble": {}, "fits": {"f": fit}}
+    figures = {item.key: item.draw() for item in plot_plan(results)}
+    assert set(figures) == {"f.effmass.c", "f.stability"}
+    stability = figures["f.stability"]
+    assert stability.axes[0].get_ylabel() == "m"
+    assert len(stability.axes[0].containers) == 1
+    for fig in figures.values():
+        assert figure_png(fig)[:8] == b"\x89PNG\r\n\x1a\n"

@@ -183,6 +183,17 @@ def test_page_lists_the_warnings(tmp_path) -> None:
     assert "No warnings." in _page_text(clean, tmp_path)
 
 
+def test_minimal_results_make_a_page(tmp_path) -> None:
+    results = {"ensemble": {"name": "tiny"},
+               "fits": {"f": {"chosen": {"method": "single", "tmin": 2, "tmax": 6, "states": 1,
+                                         "params": {"E0": {"value": 0.5, "error": None}}},
+                              "scan": []}}}
+    text = write_report(results, tmp_path).read_text(encoding="utf-8")
+    assert "<h3>f</h3>" in text and "n/a" in text
+    assert "No tau_int in the results." in text
+    assert "<img" not in text
+
+
 # --------------------------------------------------------------------- rebuild errors
 
 def test_rebuild_report_without_results_json(tmp_path) -> None:

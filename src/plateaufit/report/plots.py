@@ -263,7 +263,8 @@ def plot_stability(fit_name: str, fit: Mapping[str, Any],
     """
     chosen = fit.get("chosen") or {}
     params = chosen.get("params") or {}
-    energies = energy_names(params) or ["E0"]
+    # the energies; a formula model without E0, E1, ... shows its first parameter
+    energies = energy_names(params) or list(params)[:1] or ["E0"]
     scan = fit.get("scan") or []
     tmaxs = sorted({int(p["tmax"]) for p in scan})
     states = sorted({int(p["states"]) for p in scan})
@@ -336,7 +337,8 @@ def plot_stability(fit_name: str, fit: Mapping[str, Any],
                 ax.text(0.99, 0.97, f"{label} {name} = {format_value_error(cv, ce) if math.isfinite(ce) else cv}",
                         transform=ax.transAxes, ha="right", va="top", fontsize=6.5,
                         bbox={"facecolor": "white", "edgecolor": "none", "alpha": 0.8, "pad": 1})
-            ax.set_ylabel(f"{name} (lattice units)")
+            ax.set_ylabel(f"{_text(name)} (lattice units)" if name in energy_names([name])
+                          else _text(name))
         axes[-1].set_xlabel("tmin (t/a)")
         axes[-1].xaxis.set_major_locator(matplotlib.ticker.MaxNLocator(integer=True))
         axes[0].set_title(_text(f"{_short(fit_name)}: stability against tmin"))
