@@ -344,6 +344,7 @@ def test_results_do_not_depend_on_the_number_of_jobs(tmp_path):
 def test_with_plots_the_report_page_and_plots_are_written(tmp_path):
     spec = invented_spec()
     spec["fits"] = spec["fits"][1:]
+    del spec["observables"]["kaon"]     # one observable: fewer plots to draw
     spec["output"]["plots"] = True
     spec_path = write_invented_run(tmp_path, spec)
     out = tmp_path / "out"
@@ -369,3 +370,38 @@ def test_output_plots_false_in_the_spec_wins_over_plots_true(tmp_path):
     run_spec(spec_path, out, plots=True, jobs=1, progress=False)
     assert (out / "results.json").is_file()
     assert not (out / "report.html").exists() and not (out / "plots").exists()
+
+
+def test_a_simultaneous_fit_over_two_observables_and_two_state_counts(tmp_path):
+    # a second invented operator with the kaon's energies and its own amplitudes
+    write_invented_data(tmp_path)
+    rng = np.random.default_rng(SEED + 1)
+    np.save(tmp_path / "kaon_ax.npy", invented_correlator(rng, [(0.42, 0.6), (1.45, 1.1)]))
+    spec = invented_spec()
+    spec["observables"]["kaon_ax"] = {"file": "kaon_ax.npy"}
+    spec["fits"] = [{"name": "kaon2", "observables": ["kaon", "kaon_ax"], "model": "cosh",
+                     "states": [1, 2], "tmin": [3, 6, 3], "tmax": 12,
+                     "priors": {"E1": [1.4, 0.5]}}]
+    res = run_spec(write_spec(tmp_path, spec), tmp_path / "out", plots=False, jobs=1,
+                   progress=False)
+    fit = res["fits"]["kaon2"]
+    scan = fit["scan"]
+    assert [(r["states"], r["tmin"]) for r in scan] == [(1, 3), (1, 6), (2, 3), (2, 6)]
+    for r in scan:
+        # both observables' timeslices tmin..tmax are fitted: the amplitudes of both appear
+        assert {"E0", "A0.kaon", "A0.kaon_ax"} <= set(r["params"])
+        assert ("E1" in r["params"]) == (r["states"] == 2)
+        assert r["dof"] == 2 * (12 - r["tmin"] + 1) - len(r["params"])   # priors add no dof
+    # one covariance over all timeslices of both observables (a block matrix)
+    shown = fit["chosen"]
+    n_points = 2 * (shown["tmax"] - shown["tmin"] + 1)
+    assert fit["covariance"]["n_points"] == n_points
+    assert np.shape(fit["covariance"]["correlation"]) == (n_points, n_points)
+    e0 = shown["params"]["E0"]
+    assert abs(e0["value"] - TRUTH_E0["kaon"]) < 3 * e0["error"], e0
+    # E1 exists in the two-state fits only: averaged over them, weights renormalised there
+    w = np.array([r["weight"] for r in scan])
+    two = np.array([r["states"] == 2 for r in scan])
+    v = np.array([r["params"]["E1"]["value"] for r in scan if r["states"] == 2])
+    assert shown["params"]["E1"]["value"] == pytest.approx(float(w[two] @ v / w[two].sum()),
+                                                           rel=1e-10)
