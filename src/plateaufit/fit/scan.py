@@ -297,8 +297,6 @@ def scan(binned: np.ndarray | Mapping[str, np.ndarray], *, tmin: RangeSpec, tmax
     ----------
     W. I. Jay, E. T. Neil, Phys. Rev. D 103 (2021) 114502.
     """
-    for key in ("tmin", "tmax", "states"):
-        fit_kwargs.pop(key, None)
     names, n_t = _n_timeslices(binned)
     options = {"oscillating": fit_kwargs.get("oscillating", 0) or 0,
                "constant": bool(fit_kwargs.get("constant", False)),
