@@ -264,6 +264,7 @@ def test_unshrunk_singular_covariance_is_reported(capsys, project):
     data["covariance"] = {"shrinkage": "none"}
     data["fits"][0]["tmin"] = 0          # 2 observables x 7 timeslices = 14 points > 10 bins
     code, out, err = run(capsys, d, data)
-    assert code == 0
-    assert "covariance of the widest range t = 0..6 (14 points, 10 bins): cannot be formed" in out
-    assert "check passed with" in out
+    # the fit would stop on this covariance, so the check must not pass
+    assert code == 2
+    assert "fits[0]" in err and "14 points" in err and "10 bins" in err
+    assert "shrinkage" in err

@@ -21,7 +21,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from plateaufit.data.ensemble import Ensemble
-from plateaufit.errors import PlateaufitError
+from plateaufit.errors import FitError, PlateaufitError
 from plateaufit.spec.inputs import load_ensemble
 from plateaufit.spec.schema import FitSpec, Spec, fit_n_params, load_spec
 
@@ -175,10 +175,9 @@ def _fit_lines(spec: Spec, index: int, fit: FitSpec, binned: dict[str, np.ndarra
         cov = covariance_of_mean(block, shrinkage=c.shrinkage, target=c.target,
                                  eigenvalue_floor=c.eigenvalue_floor)
     except PlateaufitError as err:
-        lines.append(f"{head} cannot be formed: {err.message}")
-        notes.add(f"fit {fit.name}: the covariance of the widest range cannot be formed "
-                  f"({err.message})")
-        return lines
+        # the fit itself would stop here, so the check must not pass
+        raise FitError(f"fits[{index}]", f"fit {fit.name}, range t = {lo}..{hi}: "
+                       f"{err.message}") from None
     raw = ("singular" if n_bins <= n_points or not np.isfinite(cov.condition_number_raw)
            else f"{cov.condition_number_raw:.3g}")
     shrink = (c.shrinkage if isinstance(c.shrinkage, str) else "fixed")

@@ -13,6 +13,7 @@ from __future__ import annotations
 import datetime as _dt
 import hashlib
 import json
+import os
 import platform
 import sys
 import warnings
@@ -24,7 +25,7 @@ import numpy as np
 
 from plateaufit import __version__
 from plateaufit.atomic import write_text
-from plateaufit.errors import FitError, PlateaufitError
+from plateaufit.errors import DataError, FitError, PlateaufitError, SpecError
 from plateaufit.fit.average import model_average
 from plateaufit.fit.correlated import CorrelatorFit, Prior
 from plateaufit.fit.models import physical_parameter_names
@@ -334,6 +335,20 @@ def _count_kwargs(fit_spec: Any, kwargs: dict[str, Any]) -> dict[str, Any]:
             "formula": kwargs["formula"]}
 
 
+def _check_bin_size(bin_size: int, counts: list[int]) -> None:
+    """Refuse a bin size that empties a stream or leaves too few bins for a jackknife."""
+    short = [i for i, n in enumerate(counts) if n < bin_size]
+    n_bins = sum(n // bin_size for n in counts)
+    if short:
+        listed = ", ".join(f"stream {i} has {counts[i]}" for i in short)
+        raise SpecError("binning.size", f"bins of {bin_size} configurations do not fit in every "
+                        f"stream ({listed}); choose a size of at most {min(counts)} "
+                        "or `auto`")
+    if n_bins < 2:
+        raise SpecError("binning.size", f"bins of {bin_size} give {n_bins} bin(s); a jackknife "
+                        "needs at least 2 -- choose a smaller size or `auto`")
+
+
 def _largest_fit_points(spec: Any, ensemble: Any) -> int:
     """Most data points any scan point of any fit has (all its observables)."""
     largest = 0
@@ -374,6 +389,7 @@ def _ensemble_section(spec: Any, ensemble: Any, log: _RunLog) -> tuple[dict[str,
                  f"({float(np.nanmax(np.concatenate(all_taus))):.2f})")
     else:
         bin_size = int(spec.binning.size)
+    _check_bin_size(bin_size, counts)
     binned: dict[str, np.ndarray] = {}
     n_dropped = 0
     n_bins = 0
@@ -415,6 +431,19 @@ def _ensemble_section(spec: Any, ensemble: Any, log: _RunLog) -> tuple[dict[str,
                         for name, series in ensemble.correlators.items()},
     }
     return section, binned
+
+
+def _check_output_dir(out_dir: Path, key: str) -> None:
+    """Refuse, before any fitting, an output directory that cannot be written."""
+    for candidate in (out_dir, *out_dir.parents):
+        if candidate.exists():
+            if not candidate.is_dir():
+                raise DataError(str(candidate), f"{key} must name a directory, but this is a "
+                                "file; choose another output directory")
+            if not os.access(candidate, os.W_OK | os.X_OK):
+                raise DataError(str(candidate), f"{key}: this directory is not writable; "
+                                "choose another output directory")
+            return
 
 
 def _write_outputs(results: dict[str, Any], out_dir: Path, plots: bool, log: _RunLog) -> None:
@@ -469,6 +498,7 @@ def run_spec(path: str | Path, out: str | Path | None = None, *, plots: bool = T
     spec_path = Path(path)
     out_dir = Path(out) if out is not None else spec.output_dir
     plots = plots and spec.output.plots
+    _check_output_dir(out_dir, "--out" if out is not None else "output.dir")
     log = _RunLog(echo=echo)
     log.info(f"plateaufit {__version__}: {spec_path}")
     ensemble = load_ensemble(spec)
