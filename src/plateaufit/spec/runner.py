@@ -455,8 +455,7 @@ def _write_outputs(results: dict[str, Any], out_dir: Path, plots: bool, log: _Ru
         from plateaufit.report.html import write_report
         from plateaufit.report.plots import make_all_plots
 
-        make_all_plots(results, out_dir)
-        page = write_report(results, out_dir)
+        page = write_report(results, out_dir, figures=make_all_plots(results, out_dir))
         log.info(f"report page: {page}")
     write_text(out_dir / "run.log", "\n".join(log.lines) + "\n")
     write_text(out_dir / "results.json", json.dumps(results, indent=1, allow_nan=False) + "\n")
