@@ -27,6 +27,9 @@ class PlateaufitError(Exception):
         self.message = message
         super().__init__(f"{self.where}: {message}" if self.where else message)
 
+    def __reduce__(self):  # keep both arguments across a process boundary
+        return (type(self), (self.where, self.message))
+
 
 class SpecError(PlateaufitError):
     """The specification file is malformed or inconsistent."""
