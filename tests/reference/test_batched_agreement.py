@@ -50,7 +50,7 @@ def _invented(form, truth, observables, t, T, n_cfg, noise, seed, states):
     return centre * (1.0 + noise * eps)
 
 
-# name, form, states, observables, truth (reported order), t, T, noise, priors
+# name: form, states, observables, truth (reported order), t, T, noise, priors
 CASES = {
     "cosh-1": ("cosh", 1, ["pi"], [0.21, 3.0], np.arange(6, 20), 40, 0.004, None),
     "cosh-2": ("cosh", 2, ["pi"], [0.21, 0.55, 3.0, 2.0], np.arange(2, 18), 40, 0.0005,
@@ -62,15 +62,25 @@ CASES = {
                       0.0005, {"E1": Prior(0.56, 0.02), "A1.pi": (2.0, 0.05)}),
 }
 N_CFG = 40
+# A two-state fit on six late timeslices: the excited state is barely
+# determined (E1 to ~90%, A1 to ~300% of its value), and many samples sit in
+# a long curved valley of chi2 where Gauss-Newton converges slowly (tens of
+# iterations). Too loose for a 1e-8 comparison of A1; used for stationarity.
+HARD_CASES = {
+    "cosh-2-six-points": ("cosh", 2, ["pi"], [0.21, 0.55, 3.0, 2.0], np.arange(13, 19), 48,
+                          0.003, None),
+}
+SEEDS = {"cosh-2-six-points": (1, 60)}
 
 
 def _setup(case):
-    form, states, obs, truth, t, T, noise, priors = CASES[case]
-    seed = sorted(CASES).index(case) + 11
-    x = _invented(form, truth, obs, t, T, N_CFG, noise, seed, states)
+    form, states, obs, truth, t, T, noise, priors = {**CASES, **HARD_CASES}[case]
+    seed, n_cfg = SEEDS.get(case, (sorted(CASES).index(case) + 11 if case in CASES else 0,
+                                   N_CFG))
+    x = _invented(form, truth, obs, t, T, n_cfg, noise, seed, states)
     model = make_model(form, states, obs, {o: t for o in obs}, T)
-    y_samples = (x.sum(axis=0) - x) / (N_CFG - 1)          # delete-one jackknife means
-    cov = np.cov(x, rowvar=False) / N_CFG                  # covariance of the mean
+    y_samples = (x.sum(axis=0) - x) / (n_cfg - 1)          # delete-one jackknife means
+    cov = np.cov(x, rowvar=False) / n_cfg                  # covariance of the mean
     return model, x, y_samples, cov, priors, truth
 
 
@@ -182,8 +192,12 @@ def test_per_sample_covariance_matches_lmfit_and_scipy(case):
     _assert_close(model, theta, ref_scipy, "scipy least_squares, per-sample covariance")
 
 
-@pytest.mark.parametrize("case", ["cosh-2", "cosh-2-priors"])
-def test_batched_is_a_stationary_point(case):
+# The difference step (in units of each parameter's error) balances the
+# truncation error of the differences against their round-off: the six-point
+# fit is so nonlinear that it needs a much shorter step.
+@pytest.mark.parametrize("case,step", [("cosh-2", 1e-2), ("cosh-2-priors", 1e-2),
+                                       ("cosh-2-six-points", 3e-4)])
+def test_batched_is_a_stationary_point(case, step):
     # At a minimum the gradient of chi2 vanishes. Central differences of the
     # chi2 built here from scipy's triangular solve give the gradient without
     # the engine's Jacobian; divided by the curvature it is the distance to the
@@ -193,9 +207,9 @@ def test_batched_is_a_stationary_point(case):
     model, x, y_samples, cov, priors, truth = _setup(case)
     chol = np.linalg.cholesky(cov)
     start = _central(model, chol, x.mean(axis=0), priors, truth)
-    theta, converged = batched_refits(y_samples[:5], model, start, chol=chol, priors=priors)
+    theta, converged = batched_refits(y_samples, model, start, chol=chol, priors=priors)
     assert converged.all()
-    for th, y in zip(theta, y_samples[:5]):
+    for th, y in zip(theta, y_samples):
         residual, jacobian = _residual_functions(model, chol, y, priors)
         jac = jacobian(th)
         curvature = jac.T @ jac
@@ -213,6 +227,6 @@ def test_batched_is_a_stationary_point(case):
         # Richardson's extrapolation of two central differences cancels their
         # h^2 error (L. F. Richardson, Phil. Trans. R. Soc. A 210 (1911) 307).
         grad = np.array([(4 * central_difference(k, h) - central_difference(k, 2 * h)) / 3
-                         for k, h in enumerate(1e-2 * sigma)])
+                         for k, h in enumerate(step * sigma)])
         distance = np.linalg.solve(2.0 * curvature, grad)
         assert np.all(np.abs(distance) <= 1e-7 * sigma), distance / sigma

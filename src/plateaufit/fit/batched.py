@@ -509,13 +509,17 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
         # cannot be judged by chi2: take it on the quadratic model's word.
         unresolved = (pred <= floor) & (diff >= -4.0 * floor)
         accept = (diff > 0) | unresolved
-        # Convergence, on undamped steps only. The next step is about
-        # rate * this one, rate the larger of the last two ratios of
-        # successive Gauss-Newton steps (none known: no extrapolation).
+        # Convergence, on undamped steps only. With linear convergence at rate
+        # q (the larger of the last two ratios of successive undamped steps)
+        # the distance left after this step is about |step| q / (1 - q); with
+        # no rate known yet, it is taken to be |step|.
         gn_accept = accept & (lam == 0.0)
         ratio2 = np.minimum(zz / last2, 1.0)          # 0 when no step is known yet
-        small = zz * np.maximum(ratio2, last_ratio2) <= lin.tol2
-        small |= unresolved & (ratio2 >= 0.25)                    # round-off reached
+        q = np.sqrt(np.maximum(ratio2, last_ratio2))
+        small = zz * (q / (1.0 - q)) ** 2 <= lin.tol2
+        small |= (zz <= lin.tol2) & (last_ratio2 == 1.0)
+        # Round-off reached: unresolvable steps that no longer shrink.
+        small |= unresolved & (ratio2 >= 1.0)
         small |= (pred <= gain_floor) & (diff <= gain_floor)      # ftol test
         conv = gn_accept & small
         if not compact:
