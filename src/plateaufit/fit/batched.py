@@ -78,6 +78,10 @@ _LAM_GIVE_UP = 1e16
 # all, e.g. the energy of a state with zero amplitude). It changes the step,
 # never the fixed point.
 _REGULARISATION = 1e-14
+# Finished samples are dropped from the working arrays once they are at least
+# 1/_COMPACT_EVERY of them (measured in benchmarks/: fewer compactions of a
+# larger set beat compacting every iteration or never).
+_COMPACT_EVERY = 8
 # The rounding floor of chi2 is estimated as this many units of round-off of
 # |r| * | |L^{-1}| |y| | (see the module notes).
 _ROUNDING_UNITS = 8.0
@@ -469,25 +473,11 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
     damped = False                    # any lam > 0 in the working set
 
     for _ in range(max_iter):
-        if compact and done.any():
-            fin = np.flatnonzero(done)
-            theta[rows[fin]] = th[fin]
-            converged[rows[fin]] = ok[fin]
-            keep = np.flatnonzero(~done)
-            if keep.size == 0:
-                rows = keep
-                break
-            rows, th, r, chi2 = rows[keep], th[keep], r[keep], chi2[keep]
-            rp = None if rp is None else rp[keep]
-            stack = stack.keep(keep)
-            lin.take(keep)
-            lam, nu, zscale, floor, gain_floor = (lam[keep], nu[keep], zscale[keep],
-                                                  floor[keep], gain_floor[keep])
-            last2, last_ratio2, ok, done = last2[keep], last_ratio2[keep], ok[keep], done[keep]
-        elif done.all():
+        if done.all():
             break
+        masked = bool(done.any())        # finished samples still in the arrays
         z, step = lin.steps(lam, damped)
-        if not compact:
+        if masked:
             z[done] = 0.0
             step[done] = 0.0
         trial = th + step
@@ -500,8 +490,9 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
         zz = np.einsum("mp,mp->m", z, z)                           # |D delta|^2
         # Predicted gain of the quadratic model chi2 + 2 g.delta + delta.A.delta;
         # with (A + (lam + reg) D^2) delta = -g it is -g.delta + (lam + reg)|D delta|^2.
-        pred = np.einsum("mp,mp->m", lin.rhs, z) + (lam + _REGULARISATION) * zz
-        if box is not None:     # the step may have been cut by the box
+        if box is None:
+            pred = np.einsum("mp,mp->m", lin.rhs, z) + (lam + _REGULARISATION) * zz
+        else:     # the step may have been cut by the box
             pred = 2.0 * np.einsum("mp,mp->m", lin.rhs, z) - np.einsum(
                 "mp,mpq,mq->m", z, lin.scaled, z)
         diff = chi2 - chi2_t                                       # NaN for a bad trial
@@ -521,10 +512,10 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
         # Round-off reached: unresolvable steps that no longer shrink.
         small |= unresolved & (ratio2 >= 1.0)
         small |= (pred <= gain_floor) & (diff <= gain_floor)      # ftol test
-        conv = gn_accept & small
-        if not compact:
-            conv &= ~done
+        if masked:
             accept &= ~done
+            gn_accept &= ~done
+        conv = gn_accept & small
         last_ratio2 = np.where(gn_accept, np.where(ratio2 > 0, ratio2, 1.0), last_ratio2)
         last2 = np.where(gn_accept, zz, last2)
 
@@ -544,14 +535,37 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
             lam = np.where(accept, lam * shrink, np.where(lam == 0.0, _LAM_START, lam * nu))
             nu = np.where(accept | (lam == _LAM_START), 2.0, 2.0 * nu)
             lam[lam < _LAM_ZERO] = 0.0
+            if masked:
+                lam[done] = 0.0
             damped = bool(lam.any())
             done |= lam > _LAM_GIVE_UP
         ok |= conv
         done |= conv
 
+        # Drop finished samples from the working arrays once enough of them
+        # have gathered (each compaction is a fixed cost; until then they are
+        # carried along, masked).
+        n_done = int(np.count_nonzero(done))
+        if compact and n_done and (n_done * _COMPACT_EVERY >= done.size or n_done == done.size):
+            fin = np.flatnonzero(done)
+            theta[rows[fin]] = th[fin]
+            converged[rows[fin]] = ok[fin]
+            keep = np.flatnonzero(~done)
+            rows = rows[keep]
+            if keep.size == 0:
+                break
+            th, r, chi2, accept = th[keep], r[keep], chi2[keep], accept[keep]
+            rp = None if rp is None else rp[keep]
+            stack = stack.keep(keep)
+            lin.take(keep)
+            lam, nu, zscale, floor, gain_floor = (lam[keep], nu[keep], zscale[keep],
+                                                  floor[keep], gain_floor[keep])
+            last2, last_ratio2, ok, done = last2[keep], last_ratio2[keep], ok[keep], done[keep]
+            n_done = 0
+
         # Fresh linearisation where a step was accepted and work goes on.
-        need = accept & ~done
-        if all_accepted and not done.any():
+        need = accept & ~done if n_done else accept
+        if need.all():
             jw, jp = stack.whitened_jacobian(th)
             lin = _Linearisation(*stack.normal(jw, jp, r, rp), th, xtol)
             floor, gain_floor = floors(chi2, zscale)
@@ -569,7 +583,7 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
 
     if rows.size:
         theta[rows] = th
-        converged[rows] = ok
+        converged[rows] = ok & done
     converged &= np.isfinite(theta).all(axis=1)
     if box is not None:
         # On a face of the box the minimum has active constraints, which this
