@@ -215,3 +215,34 @@ def test_seam_in_correlated_uses_the_engine_without_fallback(problem):
     assert fast.engine == "batched" and fast.n_fallback == 0 and fast.converged.all()
     slow = jackknife_refits(y_samples[:6], model, start, cov=cov, engine="lmfit")
     np.testing.assert_allclose(fast.physical[:6], slow.physical, rtol=1e-6)
+
+
+class _FusedModel:
+    """The real model, also offering prediction and Jacobian from one call."""
+
+    def __init__(self, model):
+        self._model = model
+        self.calls = {"fused": 0, "jacobian": 0}
+
+    def __getattr__(self, name):
+        return getattr(self._model, name)
+
+    def jacobian(self, theta):
+        self.calls["jacobian"] += 1
+        return self._model.jacobian(theta)
+
+    def predict_and_jacobian(self, theta):
+        self.calls["fused"] += 1
+        return self._model.predict(theta), self._model.jacobian(theta)
+
+
+def test_a_fused_prediction_and_jacobian_is_used_and_changes_nothing(problem):
+    model, x, y_samples, cov, chol, start = problem
+    plain, ok_plain = batched_refits(y_samples, model, start, chol=chol)
+    fused = _FusedModel(model)
+    theta, ok = batched_refits(y_samples, fused, start, chol=chol)
+    np.testing.assert_array_equal(ok, ok_plain)
+    np.testing.assert_array_equal(theta, plain)
+    # every trial point's Jacobian came with its prediction: the only separate
+    # Jacobian is the one at the shared start
+    assert fused.calls["fused"] >= 3 and fused.calls["jacobian"] == 1

@@ -88,7 +88,10 @@ _ROUNDING_UNITS = 8.0
 
 
 class BatchedModel(Protocol):
-    """What :func:`batched_refits` needs of a model (CorrelatorModel has it)."""
+    """What :func:`batched_refits` needs of a model (CorrelatorModel has it).
+
+    Optional: ``predict_and_jacobian(theta) -> (prediction, jacobian)``.
+    """
 
     n_params: int
     physical_names: tuple[str, ...]
@@ -187,6 +190,9 @@ class _Stack:
         self.y = y                # (m, n)
         self.winv = winv          # (n, n) shared, or (m, n, n) per sample
         self.prior = prior        # (index, mean, width) or None
+        # A model that evaluates prediction and Jacobian together (sharing the
+        # exponentials) saves one pass per iteration; optional.
+        self.together = getattr(model, "predict_and_jacobian", None)
 
     def keep(self, rows: np.ndarray) -> _Stack:
         winv = self.winv if self.winv.ndim == 2 else self.winv[rows]
@@ -198,9 +204,15 @@ class _Stack:
         return self.winv[rows]
 
     def residuals(self, theta: np.ndarray
-                  ) -> tuple[np.ndarray, np.ndarray | None, np.ndarray]:
-        """Whitened data residuals (m, n), prior residuals (m, k) and chi2 (m,)."""
-        d = self.model.predict(theta) - self.y
+                  ) -> tuple[np.ndarray, np.ndarray | None, np.ndarray, np.ndarray | None]:
+        """Whitened data residuals (m, n), prior residuals (m, k), chi2 (m,), and
+        the model Jacobian at ``theta`` when the model gives it with the prediction."""
+        jac = None
+        if self.together is not None:
+            f, jac = self.together(theta)
+            d = f - self.y
+        else:
+            d = self.model.predict(theta) - self.y
         winv = self.winv
         r = d @ winv.T if winv.ndim == 2 else np.matmul(winv, d[:, :, None])[:, :, 0]
         chi2 = np.einsum("mi,mi->m", r, r)
@@ -209,13 +221,19 @@ class _Stack:
             index, mean, width = self.prior
             rp = (self.model.to_physical(theta)[:, index] - mean) / width
             chi2 += np.einsum("mk,mk->m", rp, rp)
-        return r, rp, chi2
+        return r, rp, chi2, jac
 
-    def whitened_jacobian(self, theta: np.ndarray, rows: np.ndarray | None = None
+    def whitened_jacobian(self, theta: np.ndarray, rows: np.ndarray | None = None,
+                          jac: np.ndarray | None = None
                           ) -> tuple[np.ndarray, np.ndarray | None]:
-        """Transposed whitened Jacobian (m, p, n) and prior Jacobian (m, k, p)."""
+        """Transposed whitened Jacobian (m, p, n) and prior Jacobian (m, k, p).
+
+        ``jac``, the model Jacobian at ``theta`` if already known, saves its
+        evaluation.
+        """
         winv = self._winv(rows)
-        jac = self.model.jacobian(theta)                        # (m, n, p)
+        if jac is None:
+            jac = self.model.jacobian(theta)                    # (m, n, p)
         m, n, p = jac.shape
         if winv.ndim == 2:
             # One matrix product for the whole stack: (m p, n) @ (n, n).
@@ -313,7 +331,10 @@ def batched_refits(y_samples: np.ndarray, model: BatchedModel, start: np.ndarray
         Anything with batched ``predict(theta (m, p)) -> (m, n)``,
         ``jacobian(theta) -> (m, n, p)`` (derivative of the prediction),
         ``to_physical`` and ``physical_jacobian`` (used with priors), and
-        ``physical_names``; bounds need a :class:`CorrelatorModel`.
+        ``physical_names``; bounds need a :class:`CorrelatorModel`. A model
+        that also has ``predict_and_jacobian(theta) -> (f, J)`` (one pass for
+        both) is evaluated through it, which saves a model evaluation per
+        iteration.
     start : ndarray, shape (p,) or (S, p)
         Internal parameters to start from: the central fit (the usual warm
         start), or one start per sample.
@@ -445,8 +466,8 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
             g += rp @ jp1[0]
         lin = _Linearisation(np.repeat(a1, rows.size, axis=0), g, th, xtol)
     else:
-        r, rp, chi2 = stack.residuals(th)
-        jw, jp = stack.whitened_jacobian(th)
+        r, rp, chi2, jac0 = stack.residuals(th)
+        jw, jp = stack.whitened_jacobian(th, jac=jac0)
         lin = _Linearisation(*stack.normal(jw, jp, r, rp), th, xtol)
     # |L^{-1}| |y| scales the round-off of the whitened residuals (module notes).
     if winv.ndim == 2:
@@ -485,7 +506,7 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
             trial = np.clip(trial, box[0], box[1])
             step = trial - th
             z = lin.d * step
-        r_t, rp_t, chi2_t = stack.residuals(trial)
+        r_t, rp_t, chi2_t, jac_t = stack.residuals(trial)
 
         zz = np.einsum("mp,mp->m", z, z)                           # |D delta|^2
         # Predicted gain of the quadratic model chi2 + 2 g.delta + delta.A.delta;
@@ -555,6 +576,7 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
             if keep.size == 0:
                 break
             th, r, chi2, accept = th[keep], r[keep], chi2[keep], accept[keep]
+            jac_t = None if jac_t is None else jac_t[keep]
             rp = None if rp is None else rp[keep]
             stack = stack.keep(keep)
             lin.take(keep)
@@ -566,12 +588,13 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
         # Fresh linearisation where a step was accepted and work goes on.
         need = accept & ~done if n_done else accept
         if need.all():
-            jw, jp = stack.whitened_jacobian(th)
+            jw, jp = stack.whitened_jacobian(th, jac=jac_t)
             lin = _Linearisation(*stack.normal(jw, jp, r, rp), th, xtol)
             floor, gain_floor = floors(chi2, zscale)
         elif need.any():
             idx = np.flatnonzero(need)
-            jw, jp = stack.whitened_jacobian(th[idx], rows=idx)
+            jw, jp = stack.whitened_jacobian(th[idx], rows=idx,
+                                             jac=None if jac_t is None else jac_t[idx])
             fresh = _Linearisation(*stack.normal(jw, jp, r[idx],
                                                  None if rp is None else rp[idx]),
                                    th[idx], xtol)
