@@ -36,8 +36,11 @@ amplified by the whitening) is typically 1e-13 to 1e-11 in absolute terms,
 which a step of about 1e-6 of a standard error already falls below. Minimisers
 that accept or reject steps by comparing chi2 values therefore stop about
 there. This engine judges such steps by the quadratic model instead and keeps
-taking Gauss-Newton steps until they are ``xtol`` small, so a converged sample
-sits at the zero of the chi2 gradient to about 1e-10 of a standard error.
+taking Gauss-Newton steps until the distance left, extrapolated from the
+observed rate of convergence, is ``xtol`` small, so a converged sample sits at
+the zero of the chi2 gradient to about 1e-10 of a standard error
+(``tests/reference/test_batched_agreement.py`` checks this with central
+differences of an independently built chi2).
 
 References
 ----------
@@ -50,6 +53,10 @@ parameters", J. Soc. Indust. Appl. Math. 11 (1963) 431.
 J. J. More, "The Levenberg-Marquardt algorithm: implementation and theory",
 in Numerical Analysis, Lecture Notes in Mathematics 630 (1978) 105 -- the
 scaling of the damping by the diagonal of the normal matrix.
+
+H. B. Nielsen, "Damping parameter in Marquardt's method", report
+IMM-REP-1999-05, Technical University of Denmark (1999) -- the update of the
+damping from the gain ratio (citation from memory).
 """
 
 from __future__ import annotations
@@ -79,8 +86,10 @@ _LAM_GIVE_UP = 1e16
 # never the fixed point.
 _REGULARISATION = 1e-14
 # Finished samples are dropped from the working arrays once they are at least
-# 1/_COMPACT_EVERY of them (measured in benchmarks/: fewer compactions of a
-# larger set beat compacting every iteration or never).
+# 1/_COMPACT_EVERY of them, and carried along masked until then. Compacting
+# every iteration, at 1/8, or never (compact=False) measured the same within
+# the noise on the scan of benchmarks/ (compact=True is marginally ahead);
+# 1/8 keeps the index bookkeeping rare.
 _COMPACT_EVERY = 8
 # The rounding floor of chi2 is estimated as this many units of round-off of
 # |r| * | |L^{-1}| |y| | (see the module notes).
