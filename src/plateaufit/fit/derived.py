@@ -115,6 +115,14 @@ class DerivedResult:
     n_dropped: int
 
 
+def _dotted_name(node: ast.Attribute) -> bool:
+    """``a.b.c`` (names and dots only): a reference the expression meant to make."""
+    base: ast.AST = node
+    while isinstance(base, ast.Attribute):
+        base = base.value
+    return isinstance(base, ast.Name)
+
+
 def _suggest(word: str, choices: Sequence[str]) -> str:
     close = difflib.get_close_matches(word, list(choices), n=1)
     return f"; did you mean {close[0]!r}?" if close else ""
@@ -251,7 +259,7 @@ class DerivedExpression:
         # a called name is left to check_formula, which names the allowed functions
         called = {id(n.func) for n in ast.walk(tree) if isinstance(n, ast.Call)}
         for node in ast.walk(tree):       # breadth first: the outermost a.b.c comes first
-            if isinstance(node, ast.Attribute):
+            if isinstance(node, ast.Attribute) and _dotted_name(node):
                 text = self._restore(ast.get_source_segment(substituted.strip(), node) or "")
                 first = text.split(".")[0]
                 if self._fits is None:
@@ -460,5 +468,6 @@ def evaluate_derived(expression: str | DerivedExpression,
                                "central values; its systematic error cannot be propagated")
         sys_total = float(np.sqrt(np.sum((grad * np.array([sys_err[r] for r in with_sys])) ** 2)))
     return DerivedResult(expression=expr.expression, references=expr.references, value=value,
-                         stat_error=stat, sys_error=sys_total, error=float(np.hypot(stat, sys_total)),
-                         samples=f_samples, n_dropped=n_dropped)
+                         stat_error=stat, sys_error=sys_total,
+                         error=float(np.hypot(stat, sys_total)), samples=f_samples,
+                         n_dropped=n_dropped)

@@ -1,7 +1,7 @@
 """The report page: one self-contained HTML file per run.
 
 ``report.html`` holds the data summary, the chosen results (with the truth
-beside them when the results carry one), every plot as an embedded PNG, the
+beside them when the results carry one), the derived quantities, every plot as an embedded PNG, the
 fit-range scan tables, the warnings and the provenance. Styles are inline, the
 images are base64 ``data:`` URIs, and the page uses no script and no external
 resource, so it opens from disk in any browser and can be mailed as one file.
@@ -322,6 +322,47 @@ def _section_results(results: Mapping[str, Any]) -> str:
     return "".join(out)
 
 
+def _section_derived(results: Mapping[str, Any]) -> str:
+    """The derived quantities (``results['derived']``); empty when there are none."""
+    derived = results.get("derived") or {}
+    if not derived:
+        return ""
+    truth = (results.get("truth") or {}).get("derived") or {}
+    has_truth = any(truth.get(name) is not None for name in derived)
+    out = ['<section id="derived"><h2>Derived quantities</h2>',
+           '<p class="note">Functions of the chosen or averaged fit parameters. stat: jackknife '
+           "error of the expression evaluated on every jackknife sample (all fits share the "
+           "bins, so the correlations between fits are kept); sys: the inputs' systematic "
+           "errors propagated linearly in quadrature, taken as independent; total = "
+           "sqrt(stat^2 + sys^2).</p>"]
+    head = ["Quantity", "expression", "value(total)", "value(stat)(sys)", "stat", "sys"]
+    numeric = [False, False, True, True, True, True]
+    if has_truth:
+        head += ["truth", "(value - truth) / total"]
+        numeric += [True, True]
+    out.append('<div class="scroll"><table>')
+    out.append(_row(head, header=True, num=numeric))
+    for name, entry in derived.items():
+        entry = entry or {}
+        v, tot = _num(entry.get("value")), _num(entry.get("error"))
+        stat = _num(entry.get("stat_error", entry.get("error")))
+        sys_ = _num(entry.get("sys_error", 0.0))
+        both = ("n/a" if math.isnan(v) else
+                format_value_errors(v, [abs(stat) if math.isfinite(stat) else stat,
+                                        abs(sys_) if math.isfinite(sys_) else sys_]))
+        cells = [_e(name), f"<code>{_e(entry.get('expression', ''))}</code>", _e(_ve(v, tot)),
+                 _e(both), _e(_fmt(stat, ".2g")), _e(_fmt(sys_, ".2g"))]
+        if has_truth:
+            tv = _num(truth.get(name))
+            pull = ((v - tv) / tot if math.isfinite(tv) and math.isfinite(tot) and tot > 0
+                    else math.nan)
+            cells += [_e(_fmt(tv, ".6g") if math.isfinite(tv) else "—"),
+                      _e(f"{pull:+.2f}" if math.isfinite(pull) else "—")]
+        out.append(_row(cells, num=numeric))
+    out.append("</table></div></section>")
+    return "".join(out)
+
+
 def _png_size(data: bytes) -> tuple[int, int] | None:
     if data[:8] != b"\x89PNG\r\n\x1a\n" or data[12:16] != b"IHDR":
         return None
@@ -452,12 +493,15 @@ def render_report(results: Mapping[str, Any],
     sub = (f"ensemble {_e(ens.get('name', 'n/a'))} · {len(results.get('fits') or {})} fit(s) · "
            f"results created {_e(prov.get('created', 'n/a'))} · page written {_e(stamp)} by "
            f"plateaufit {_e(__version__)}")
-    nav = "".join(f'<a href="#{a}">{t}</a>' for a, t in (
-        ("warnings", "Warnings"), ("data", "Data"), ("results", "Results"), ("plots", "Plots"),
-        ("scan", "Scans"), ("provenance", "Provenance")))
+    derived = _section_derived(results)
+    links = [("warnings", "Warnings"), ("data", "Data"), ("results", "Results"),
+             *([("derived", "Derived")] if derived else []), ("plots", "Plots"),
+             ("scan", "Scans"), ("provenance", "Provenance")]
+    nav = "".join(f'<a href="#{a}">{t}</a>' for a, t in links)
     body = "".join([
         _section_warnings(results), _section_data(results), _section_results(results),
-        _section_plots(results, figures), _section_scans(results), _section_provenance(results),
+        derived, _section_plots(results, figures), _section_scans(results),
+        _section_provenance(results),
     ])
     return (
         "<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n"

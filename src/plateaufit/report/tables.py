@@ -369,11 +369,15 @@ def latex_results_table(results: Mapping[str, Any]) -> str:
     """The chosen results of every fit as a LaTeX ``tabular`` fragment.
 
     One row per (fit, parameter) with columns: fit name, parameter,
-    value(stat)(sys), value(total), method, chosen range. Names are escaped for
-    LaTeX. The fragment uses the rules ``\\toprule``, ``\\midrule`` and
-    ``\\bottomrule`` of the **booktabs** package: put ``\\usepackage{booktabs}``
-    in the document's preamble, and ``\\input`` the fragment inside a ``table``
-    environment if you want a float and a caption.
+    value(stat)(sys), value(total), method, chosen range. The derived
+    quantities (``results['derived']``, when there are any) follow in rows of
+    the same six columns: ``derived``, the quantity's name, value(stat)(sys),
+    value(total), ``jackknife``, and the expression (the last header then
+    reads "Range / expression"). Names are escaped for LaTeX. The fragment
+    uses the rules ``\\toprule``, ``\\midrule`` and ``\\bottomrule`` of the
+    **booktabs** package: put ``\\usepackage{booktabs}`` in the document's
+    preamble, and ``\\input`` the fragment inside a ``table`` environment if you
+    want a float and a caption.
 
     Parameters
     ----------
@@ -385,11 +389,13 @@ def latex_results_table(results: Mapping[str, Any]) -> str:
     str
         The LaTeX source, ending in a newline.
     """
+    derived = results.get("derived") or {}
+    last = "Range / expression" if derived else "Range"
     lines = [
         "% plateaufit results table; needs \\usepackage{booktabs}",
         "\\begin{tabular}{llllll}",
         "\\toprule",
-        "Fit & Parameter & Value(stat)(sys) & Value(total) & Method & Range \\\\",
+        f"Fit & Parameter & Value(stat)(sys) & Value(total) & Method & {last} \\\\",
         "\\midrule",
     ]
     fits = results.get("fits") or {}
@@ -414,6 +420,19 @@ def latex_results_table(results: Mapping[str, Any]) -> str:
             cells = [latex_escape(fit_name) if i == 0 else "", latex_escape(pname), both, tot,
                      method if i == 0 else "", range_text if i == 0 else ""]
             lines.append(" & ".join(cells) + " \\\\")
+    if derived and not first:
+        lines.append("\\midrule")
+    for i, (name, entry) in enumerate(derived.items()):
+        entry = entry or {}
+        value = _num(entry.get("value"))
+        stat = _num(entry.get("stat_error", entry.get("error")))
+        sys_ = _num(entry.get("sys_error", 0.0))
+        total = _num(entry.get("error"))
+        cells = ["derived" if i == 0 else "", latex_escape(name),
+                 _latex_number(_safe_format(value, [stat, sys_])),
+                 _latex_number(_safe_format(value, [total])), "jackknife",
+                 f"\\texttt{{{latex_escape(entry.get('expression', ''))}}}"]
+        lines.append(" & ".join(cells) + " \\\\")
     lines += ["\\bottomrule", "\\end{tabular}"]
     return "\n".join(lines) + "\n"
 

@@ -2,7 +2,9 @@
 
 :func:`run_spec` validates the spec, loads and aligns the data, measures the
 autocorrelation, bins, runs every fit's scan (central fits and jackknife
-refits), chooses or averages, and writes results.json, the tables, the log,
+refits), chooses or averages, evaluates the derived quantities (``derived:``,
+with the jackknife samples of the chosen or averaged parameters, so the
+correlations between fits on the same bins are kept), and writes results.json, the tables, the log,
 and (optionally) the plots and the report page. Nothing is written until all
 fitting is done, every file is written atomically, and results.json is written
 last, so its presence means a complete run.
@@ -28,11 +30,12 @@ from plateaufit.atomic import write_text
 from plateaufit.errors import DataError, FitError, PlateaufitError, SpecError
 from plateaufit.fit.average import model_average
 from plateaufit.fit.correlated import CorrelatorFit, Prior
+from plateaufit.fit.derived import DerivedExpression, DerivedInput, evaluate_derived
 from plateaufit.fit.models import physical_parameter_names
 from plateaufit.fit.scan import scan, scan_points
 from plateaufit.parallel import make_executor
 from plateaufit.spec.inputs import data_checksums, load_ensemble
-from plateaufit.spec.schema import fit_operators, load_spec
+from plateaufit.spec.schema import fit_operators, fit_reference_names, load_spec
 from plateaufit.stats.autocorr import BinningWarning, ShortChainWarning, binning_study, choose_bin_size, tau_int
 from plateaufit.stats.effmass import effective_mass_jackknife
 from plateaufit.stats.resample import bin_samples
@@ -159,13 +162,17 @@ def _scan_row(fit: CorrelatorFit, model: str, weight: float) -> dict[str, Any]:
     }
 
 
-def _average_fits(fits: list[CorrelatorFit]) -> tuple[dict[str, dict[str, float]], np.ndarray, int]:
+def _average_fits(fits: list[CorrelatorFit]) -> tuple[dict[str, dict[str, float]], np.ndarray,
+                                                     int, dict[str, DerivedInput]]:
     """Model-average every parameter over the fits that have it.
 
     A parameter such as E1 exists only in fits with two or more states; it is
     averaged over those fits, their weights renormalised among them.
     Returns the params entries, the weights of all fits (from E0, which every
-    fit has) and the number of fits excluded for not converging.
+    fit has), the number of fits excluded for not converging, and for each
+    parameter its averaged value, jackknife samples ``sum_f w_f samples_f``
+    (the combination whose jackknife error is the averaged stat_error) and
+    sys_error, the inputs of derived quantities.
     """
     aic = np.array([f.central.aic for f in fits], dtype=float)
     converged = np.array([f.converged for f in fits], dtype=bool)
@@ -173,6 +180,7 @@ def _average_fits(fits: list[CorrelatorFit]) -> tuple[dict[str, dict[str, float]
     for f in fits:
         names.extend(n for n in f.model.physical_names if n not in names)
     params: dict[str, dict[str, float]] = {}
+    inputs: dict[str, DerivedInput] = {}
     weights = np.zeros(len(fits))
     n_excluded = int((~converged).sum())
     for name in names:
@@ -184,9 +192,13 @@ def _average_fits(fits: list[CorrelatorFit]) -> tuple[dict[str, dict[str, float]
                             for i in members])
         avg = model_average(central, samples, aic[members], converged[members], [name])
         params[name] = _param_entry(avg.value[name], avg.stat_error[name], avg.sys_error[name])
+        # the averaged jackknife samples, combined exactly as model_average combines them
+        has = np.isfinite(central[:, 0]) & (avg.weights > 0)
+        w = avg.weights[has] / avg.weights[has].sum()
+        inputs[name] = DerivedInput(avg.value[name], w @ samples[has, :, 0], avg.sys_error[name])
         if name == "E0":
             weights[members] = avg.weights
-    return params, weights, n_excluded
+    return params, weights, n_excluded, inputs
 
 
 def _covariance_summary(fit: CorrelatorFit) -> dict[str, Any]:
@@ -231,7 +243,10 @@ def _fit_kwargs(fit_spec: Any, spec: Any) -> dict[str, Any]:
 
 
 def _run_fit(index: int, fit_spec: Any, spec: Any, binned: dict[str, np.ndarray],
-             executor: Any, progress: bool, log: _RunLog) -> dict[str, Any]:
+             executor: Any, progress: bool, log: _RunLog
+             ) -> tuple[dict[str, Any], dict[str, DerivedInput]]:
+    """One fit's scan, choice or average: its results entry, and per parameter the
+    value, jackknife samples and sys error a derived quantity is computed from."""
     where = f"fits[{index}]"
     observables = list(fit_spec.observables)
     data = {name: binned[name] for name in observables}
@@ -264,6 +279,9 @@ def _run_fit(index: int, fit_spec: Any, spec: Any, binned: dict[str, np.ndarray]
         weights[fits.index(chosen_fit)] = 1.0
         params = {name: _param_entry(chosen_fit.central.physical[name], chosen_fit.errors[name])
                   for name in chosen_fit.model.physical_names}
+        inputs = {name: DerivedInput(float(chosen_fit.central.physical[name]),
+                                     chosen_fit.samples[:, j], 0.0)
+                  for j, name in enumerate(chosen_fit.model.physical_names)}
         chosen = {"method": "single", "tmin": chosen_fit.tmin, "tmax": chosen_fit.tmax,
                   "states": chosen_fit.states, "params": params,
                   "chi2": chosen_fit.central.chi2, "dof": chosen_fit.central.dof,
@@ -278,7 +296,7 @@ def _run_fit(index: int, fit_spec: Any, spec: Any, binned: dict[str, np.ndarray]
                                 f"{chosen_fit.central.p_value:.3g}")
         shown = chosen_fit
     else:
-        params, weights, n_excluded = _average_fits(fits)
+        params, weights, n_excluded, inputs = _average_fits(fits)
         if not params:
             raise FitError(where, "no fit of the scan converged; narrow the ranges, add priors "
                                   "on the excited states, or give start values")
@@ -325,7 +343,47 @@ def _run_fit(index: int, fit_spec: Any, spec: Any, binned: dict[str, np.ndarray]
         "effective_mass": effmass,
         "covariance": _covariance_summary(shown),
         "warnings": fit_warnings,
-    }
+    }, inputs
+
+
+def _derived_section(spec: Any, inputs_by_fit: dict[str, dict[str, DerivedInput]],
+                     log: _RunLog) -> dict[str, Any]:
+    """``derived.NAME.{expression, value, error, stat_error, sys_error, references}``.
+
+    Every fit shares the bins, so sample k of every fit's parameters leaves
+    out the same bin: the derived quantity's jackknife samples keep the
+    correlations between the fits (see plateaufit.fit.derived).
+    """
+    out: dict[str, Any] = {}
+    if not spec.derived:
+        return out
+    known = fit_reference_names(spec)
+    for name, text in spec.derived.items():
+        where = f"derived.{name}"
+        try:
+            expr = DerivedExpression(text, known)
+        except ValueError as exc:      # load_spec checked it already
+            raise SpecError(where, str(exc)) from None
+        inputs = {}
+        for ref in expr.references:
+            fit_name, param = expr.parts[ref]
+            if param not in inputs_by_fit[fit_name]:
+                raise FitError(where, f"{ref} has no result: no fit of {fit_name}'s scan that "
+                               f"has {param} converged; fix that fit (priors, ranges, states) "
+                               "or leave the reference out")
+            inputs[ref] = inputs_by_fit[fit_name][param]
+        try:
+            result = evaluate_derived(expr, inputs)
+        except PlateaufitError as err:
+            raise type(err)(where, err.message) from None
+        if result.n_dropped:
+            log.warn(f"derived {name}: {result.n_dropped} jackknife sample(s) left out, where a "
+                     "refit of an input failed")
+        out[name] = {"expression": text, "references": list(result.references),
+                     **_param_entry(result.value, result.stat_error, result.sys_error)}
+        log.info(f"derived {name} = {text}: {result.value:.6g} +- {result.error:.2g} "
+                 f"(stat {result.stat_error:.2g}, sys {result.sys_error:.2g})")
+    return out
 
 
 def _count_kwargs(fit_spec: Any, kwargs: dict[str, Any]) -> dict[str, Any]:
@@ -504,9 +562,12 @@ def run_spec(path: str | Path, out: str | Path | None = None, *, plots: bool = T
     ensemble_section, binned = _ensemble_section(spec, ensemble, log)
 
     fits: dict[str, Any] = {}
+    inputs_by_fit: dict[str, dict[str, DerivedInput]] = {}
     with make_executor(jobs=jobs, scheduler=scheduler) as executor:
         for index, fit_spec in enumerate(spec.fits):
-            fits[fit_spec.name] = _run_fit(index, fit_spec, spec, binned, executor, progress, log)
+            fits[fit_spec.name], inputs_by_fit[fit_spec.name] = _run_fit(
+                index, fit_spec, spec, binned, executor, progress, log)
+    derived = _derived_section(spec, inputs_by_fit, log)
 
     truth = {name: dict(values) for name, values in (spec.truth or {}).items()}
     results = {
@@ -514,6 +575,7 @@ def run_spec(path: str | Path, out: str | Path | None = None, *, plots: bool = T
         "output": {"dir": str(out_dir)},
         "ensemble": ensemble_section,
         "fits": fits,
+        "derived": derived,
         "truth": truth,
         "warnings": list(log.warnings),
         "provenance": {

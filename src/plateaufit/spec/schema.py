@@ -5,7 +5,8 @@ and values of every key with pydantic (unknown keys are refused, listing the
 allowed ones), then checks what involves more than one key: the observables a
 fit names, fit ranges against the folded data, parameters named in priors,
 bounds and start against the model, degrees of freedom, ``choose``, user
-formulas. Every problem is a :class:`~plateaufit.errors.SpecError` whose
+formulas, derived quantities (``derived:``, expressions over ``FIT.PARAM``
+references). Every problem is a :class:`~plateaufit.errors.SpecError` whose
 ``where`` is the key path (``fits[1].tmin``, ``observables.pion.file``,
 ``covariance.shrinkage``) and whose message says what is allowed; the line of
 the spec file is appended when it is known.
@@ -47,6 +48,7 @@ __all__ = [
     "fit_operators",
     "fit_parameter_names",
     "fit_n_params",
+    "fit_reference_names",
     "max_fit_t",
 ]
 
@@ -350,6 +352,7 @@ class Spec(_Strict):
     fits: list[FitSpec] = Field(default_factory=list)
     output: OutputSpec = Field(default_factory=OutputSpec)
     truth: dict[str, dict[str, float]] = Field(default_factory=dict)
+    derived: dict[str, str] = Field(default_factory=dict)
 
     _path: Path | None = PrivateAttr(default=None)
     _base_dir: Path = PrivateAttr(default_factory=Path.cwd)
@@ -400,6 +403,21 @@ def fit_parameter_names(spec: Spec, fit: FitSpec, states: int | None = None) -> 
     return list(physical_parameter_names(fit.observables, n, oscillating=fit.oscillating,
                                          constant=fit.constant,
                                          operators=fit_operators(spec, fit)))
+
+
+def fit_reference_names(spec: Spec) -> dict[str, list[str]]:
+    """Fit name -> the parameters a derived quantity may refer to as ``FIT.PARAM``.
+
+    Those of the chosen result: for ``choose: {tmin, tmax, states}`` the
+    parameters of that state count, for ``choose: average`` those of the
+    largest state count of the scan (an averaged ``E1`` runs over the fits
+    that have it).
+    """
+    out = {}
+    for fit in spec.fits:
+        states = fit.choose.states if isinstance(fit.choose, ChooseSpec) else None
+        out[fit.name] = fit_parameter_names(spec, fit, states)
+    return out
 
 
 def fit_n_params(spec: Spec, fit: FitSpec, states: int) -> int:
@@ -559,6 +577,9 @@ _MISSING_HINTS = {
     "params": " NAME: starting value for each parameter of the formula",
 }
 
+#: the key of ``truth:`` that holds the truth of the derived quantities
+TRUTH_DERIVED_KEY = "derived"
+
 
 def _describe(value: Any) -> str:
     text = repr(value)
@@ -706,10 +727,58 @@ def _cross_check(spec: Spec, err: _Errors) -> None:
     if resolved.exists() and not resolved.is_dir():
         raise err(("output", "dir"), f"{resolved} exists and is not a directory; choose "
                   "another output.dir")
+    _check_derived(spec, names, err)
     for fit_name in spec.truth:
+        if fit_name == TRUTH_DERIVED_KEY and fit_name not in names:
+            _check_derived_truth(spec, err)
+            continue
         if fit_name not in names:
             raise err(("truth", fit_name), f"no fit named {fit_name!r}; truth: lists values by "
-                      f"fit name ({', '.join(names) or 'no fits defined'})")
+                      f"fit name ({', '.join(names) or 'no fits defined'}) and, under "
+                      f"{TRUTH_DERIVED_KEY}:, by derived quantity")
+
+
+def _check_derived(spec: Spec, fit_index: dict[str, int], err: _Errors) -> None:
+    """``derived.NAME``: a free name, and an expression over known FIT.PARAM references."""
+    if not spec.derived:
+        return
+    from plateaufit.fit.derived import DerivedExpression
+
+    if TRUTH_DERIVED_KEY in fit_index:
+        raise err(("fits", fit_index[TRUTH_DERIVED_KEY], "name"),
+                  f"a spec with derived quantities cannot have a fit named "
+                  f"{TRUTH_DERIVED_KEY!r} (truth.{TRUTH_DERIVED_KEY} holds their truth); "
+                  "rename the fit")
+    known = fit_reference_names(spec)
+    for name, expression in spec.derived.items():
+        key = ("derived", name)
+        if not _OBS_NAME.match(name):
+            raise err(key, f"derived quantity name {name!r} must start with a letter and use "
+                      "only letters, digits and '_'")
+        if name in fit_index:
+            raise err(key, f"the name {name!r} is already the name of fits[{fit_index[name]}]; "
+                      "give the derived quantity its own name")
+        if not known:
+            raise err(key, "there are no fits to derive from; add fits: first")
+        try:
+            DerivedExpression(expression, known)
+        except ValueError as exc:
+            raise err(key, str(exc)) from None
+
+
+def _check_derived_truth(spec: Spec, err: _Errors) -> None:
+    defined = list(spec.derived)
+    for name in spec.truth[TRUTH_DERIVED_KEY]:
+        if name not in spec.derived:
+            listed = (f"the derived quantities are {', '.join(defined)}" if defined
+                      else "the spec defines none (add derived: {NAME: expression})")
+            raise err(("truth", TRUTH_DERIVED_KEY, name), f"no derived quantity named {name!r}; "
+                      f"{listed}{_suggest_name(name, defined)}")
+
+
+def _suggest_name(name: str, choices: list[str]) -> str:
+    close = difflib.get_close_matches(name, choices, n=1)
+    return f"; did you mean {close[0]!r}?" if close else ""
 
 
 def _check_observable(spec: Spec, name: str, obs: ObservableSpec, err: _Errors) -> None:
