@@ -14,7 +14,8 @@ from scipy import stats
 
 from plateaufit.data.ensemble import align_observables
 from plateaufit.data.loaders import load_correlator
-from plateaufit.demo import (OBSERVABLES, STREAMS, TIME_EXTENT, demo_spec_text, demo_truth,
+from plateaufit.demo import (DEMO_DERIVED, OBSERVABLES, STREAMS, TIME_EXTENT, demo_derived_truth,
+                             demo_spec_text, demo_truth,
                              format_truth_table, generate_demo_data, hdf5_library_version,
                              simulate)
 from plateaufit.stats.resample import bin_samples
@@ -66,8 +67,9 @@ def test_spec_file_is_the_generated_spec_and_carries_the_truth():
     text = SPEC.read_text(encoding="utf-8")
     assert text == demo_spec_text()
     spec = yaml.safe_load(text)
-    assert spec["truth"] == demo_truth()
+    assert spec["truth"] == {**demo_truth(), "derived": demo_derived_truth()}
     assert {f["name"] for f in spec["fits"]} == set(demo_truth())
+    assert spec["derived"] == DEMO_DERIVED
     for name, obs in spec["observables"].items():
         assert (SPEC.parent / obs["file"]).is_file(), name
 
@@ -78,6 +80,19 @@ def test_spec_passes_validation():
     spec = load_spec(SPEC)
     assert spec.ensemble.time_extent == TIME_EXTENT
     assert [f.name for f in spec.fits] == list(demo_truth())
+    assert spec.derived == DEMO_DERIVED
+
+
+def test_derived_truth_follows_from_the_fits_truth():
+    # the derived quantities' truth is the expressions evaluated on the fits' truth
+    from plateaufit.fit.derived import DerivedExpression
+
+    truth = demo_truth()
+    known = {fit: list(params) for fit, params in truth.items()}
+    for name, expression in DEMO_DERIVED.items():
+        expr = DerivedExpression(expression, known)
+        values = {ref: truth[fit][param] for ref, (fit, param) in expr.parts.items()}
+        assert demo_derived_truth()[name] == pytest.approx(float(expr(values)), rel=1e-12)
 
 
 def test_loaders_read_back_what_was_generated_with_ids_and_streams(generated, sim):
@@ -177,3 +192,14 @@ def test_truth_table_shows_value_error_truth_and_pull():
     e1 = next(line for line in lines if " E1 " in line).split()
     assert e1[-1] == "-1.00"
     assert "(not fitted)" in next(line for line in lines if "A0.x" in line)
+
+
+def test_truth_table_lists_the_derived_quantities():
+    results = {"fits": {"pion": {"chosen": {"params": {
+        "E0": {"value": 0.2010, "error": 0.0005}}}}},
+        "derived": {"gap_pion": {"value": 0.53, "error": 0.005}},
+        "truth": {"pion": {"E0": 0.2}, "derived": {"gap_pion": 0.52, "ratio_vector_pion": 2.2}}}
+    lines = format_truth_table(results).splitlines()
+    gap = next(line for line in lines if " gap_pion " in line).split()
+    assert gap == ["derived", "gap_pion", "0.5300(50)", "0.52", "+2.00"]
+    assert "(not computed)" in next(line for line in lines if "ratio_vector_pion" in line)

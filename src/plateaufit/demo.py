@@ -231,6 +231,30 @@ def demo_truth() -> dict[str, dict[str, float]]:
     }
 
 
+#: The demo's derived quantities (spec key ``derived:``): name -> expression.
+DEMO_DERIVED: dict[str, str] = {
+    "gap_pion": "pion.E1 - pion.E0",
+    "ratio_vector_pion": "vector.E0 / pion.E0",
+}
+
+
+def demo_derived_truth() -> dict[str, float]:
+    """The known truth of the demo's derived quantities (:data:`DEMO_DERIVED`).
+
+    Returns
+    -------
+    dict
+        Name -> true value, from the true energies, rounded to 12 significant
+        digits so the truth reads cleanly (``0.52``, not ``0.5199999999999999``).
+    """
+    vector = _by_name("vector")
+    exact = {
+        "gap_pion": _PION_E[1] - _PION_E[0],
+        "ratio_vector_pion": vector.energies[0] / _PION_E[0],
+    }
+    return {name: float(f"{exact[name]:.12g}") for name in DEMO_DERIVED}
+
+
 # ----------------------------------------------------------------------- generation
 
 
@@ -566,6 +590,10 @@ fits:
     priors: {{E1: [1.1, 0.4]}}
     choose: average
 
+# Derived quantities: functions of the chosen (here averaged) fit parameters; their
+# jackknife errors keep the correlations between fits on the same bins.
+derived:
+{derived}
 output:
   dir: {output}
   plots: true
@@ -599,11 +627,16 @@ def demo_spec_text(data_dir: str = "../examples/demo_data",
     for fit, params in demo_truth().items():
         truth_lines.append(f"  {fit}:")
         truth_lines.extend(f"    {name}: {_yaml_number(value)}" for name, value in params.items())
+    truth_lines.append("  derived:                        # the derived quantities' truth")
+    truth_lines.extend(f"    {name}: {_yaml_number(value)}"
+                       for name, value in demo_derived_truth().items())
+    derived_lines = [f'  {name}: "{expression}"' for name, expression in DEMO_DERIVED.items()]
     return _SPEC_TEMPLATE.format(
         ensemble=ENSEMBLE_NAME, T=TIME_EXTENT,
         stream_counts=", ".join(str(n) for _, n in STREAMS),
         data=data_dir.rstrip("/"), output=output_dir,
         vector_dataset=VECTOR_DATASET, vector_ids=VECTOR_IDS_DATASET,
+        derived="\n".join(derived_lines) + "\n",
         truth="\n".join(truth_lines) + "\n")
 
 
@@ -614,7 +647,7 @@ def _pull_rows(results: dict[str, Any]) -> list[tuple[str, str, str, str, str]]:
     from plateaufit.report.tables import format_value_error
 
     rows = []
-    truth = results.get("truth") or demo_truth()
+    truth = results.get("truth") or {**demo_truth(), "derived": demo_derived_truth()}
     for fit_name, fit in results["fits"].items():
         params = fit["chosen"]["params"]
         for name, true_value in truth.get(fit_name, {}).items():
@@ -626,11 +659,25 @@ def _pull_rows(results: dict[str, Any]) -> list[tuple[str, str, str, str, str]]:
             pull = (value - true_value) / error if error > 0 else float("nan")
             rows.append((fit_name, name, format_value_error(value, error), f"{true_value:g}",
                          f"{pull:+.2f}"))
+    derived = results.get("derived") or {}
+    derived_truth = truth.get("derived") if "derived" not in results["fits"] else None
+    for name, true_value in (derived_truth or {}).items():
+        if name not in derived:
+            rows.append(("derived", name, "(not computed)", f"{true_value:g}", ""))
+            continue
+        value = float(derived[name]["value"])
+        error = float(derived[name]["error"])
+        pull = (value - true_value) / error if error > 0 else float("nan")
+        rows.append(("derived", name, format_value_error(value, error), f"{true_value:g}",
+                     f"{pull:+.2f}"))
     return rows
 
 
 def format_truth_table(results: dict[str, Any]) -> str:
     """Plain-text table of fitted values against the truth, with pulls in sigma.
+
+    The fits' parameters come first, then the derived quantities (fit column
+    ``derived``) whose truth is under ``truth.derived``.
 
     Parameters
     ----------
