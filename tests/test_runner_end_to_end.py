@@ -313,6 +313,29 @@ def test_choose_reports_the_named_point(tmp_path):
         assert entry["sys_error"] == 0.0 and entry["error"] == entry["stat_error"]
 
 
+def test_a_user_formula_scan_equals_the_built_in_cosh_scan(tmp_path):
+    # a formula has no E0 of its own; its average must still weight every point, and the
+    # same cosh written as a formula must give the built-in model's numbers (exact)
+    spec = invented_spec()
+    built_in = dict(spec["fits"][0])
+    formula = {"name": "kaon_formula", "observables": ["kaon"], "model": "formula",
+               "formula": {"expression": "A * (exp(-E * t) + exp(-E * (T - t)))",
+                           "params": {"A": 1.0, "E": 0.5}},
+               "tmin": [7, 9], "tmax": 12}
+    spec["fits"] = [built_in, formula]
+    res = run_spec(write_invented_run(tmp_path, spec), tmp_path / "out", plots=False,
+                   jobs=1, progress=False)
+    ours, theirs = res["fits"]["kaon_formula"], res["fits"]["kaon"]
+    assert ours["chosen"]["method"] == "average"
+    assert sum(r["weight"] for r in ours["scan"]) == pytest.approx(1.0)
+    for a, b in zip(ours["scan"], theirs["scan"]):
+        assert a["weight"] == pytest.approx(b["weight"], rel=1e-6)
+    assert ours["chosen"]["params"]["E"]["value"] == pytest.approx(
+        theirs["chosen"]["params"]["E0"]["value"], rel=1e-7)
+    assert ours["chosen"]["params"]["E"]["error"] == pytest.approx(
+        theirs["chosen"]["params"]["E0"]["error"], rel=1e-4)
+
+
 def test_without_out_the_spec_output_dir_is_used(tmp_path, monkeypatch):
     directory = tmp_path / "analysis"
     spec = invented_spec()

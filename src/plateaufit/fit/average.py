@@ -30,7 +30,8 @@ theory results", Phys. Rev. D 103 (2021) 114502.
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass
+from typing import Any
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -57,6 +58,10 @@ class ModelAverage:
         ``(n_fits,)`` normalised AIC weights (0 for non-converged fits).
     n_excluded : int
         Number of fits left out because they did not converge.
+    samples : dict
+        Name -> ``(S,)`` averaged jackknife samples ``sum_f w_f samples_f`` (the
+        combination whose jackknife error is ``stat_error``), for propagating
+        the average into derived quantities.
     """
 
     names: tuple[str, ...]
@@ -66,6 +71,7 @@ class ModelAverage:
     error: dict[str, float]
     weights: np.ndarray
     n_excluded: int
+    samples: dict[str, np.ndarray] = field(default_factory=dict, repr=False)
 
 
 def aic_weights(aic: np.ndarray | Sequence[float],
@@ -183,6 +189,7 @@ def model_average(central: np.ndarray, samples: np.ndarray,
     n_excluded = int(np.count_nonzero(~converged))
 
     value: dict[str, float] = {}
+    averaged: dict[str, np.ndarray] = {}
     stat: dict[str, float] = {}
     sys: dict[str, float] = {}
     total: dict[str, float] = {}
@@ -191,6 +198,7 @@ def model_average(central: np.ndarray, samples: np.ndarray,
         if not has.any():
             nan = float("nan")
             value[name], stat[name], sys[name], total[name] = nan, nan, nan, nan
+            averaged[name] = np.full(samples.shape[1], nan)
             continue
         w = weights[has] / weights[has].sum()
         a = central[has, j]
@@ -203,9 +211,53 @@ def model_average(central: np.ndarray, samples: np.ndarray,
         mean = float(w @ a)
         spread = float(w @ (a - mean) ** 2)   # = sum w a^2 - mean^2, computed stably
         averaged_samples = w @ s              # (S,)
+        averaged[name] = averaged_samples
         value[name] = mean
         stat[name] = _jackknife_error(averaged_samples)
         sys[name] = float(np.sqrt(max(spread, 0.0)))
         total[name] = float(np.hypot(stat[name], sys[name]))
     return ModelAverage(names=names, value=value, stat_error=stat, sys_error=sys,
-                        error=total, weights=weights, n_excluded=n_excluded)
+                        error=total, weights=weights, n_excluded=n_excluded, samples=averaged)
+
+
+def average_fits(fits: Sequence[Any]) -> ModelAverage:
+    """Model-average every parameter of a scan over the fits that have it.
+
+    Parameters
+    ----------
+    fits : sequence of CorrelatorFit
+        The points of one scan, fitted on the same binned data (so they share
+        their jackknife samples). Their parameter sets may differ: ``E1``
+        exists only in the fits with two or more states, and is averaged over
+        those, their weights renormalised among them (see
+        :func:`model_average`).
+
+    Returns
+    -------
+    ModelAverage
+        Over the union of the fits' parameter names, in order of first
+        appearance; ``weights`` are the weights of all fits.
+
+    References
+    ----------
+    W. I. Jay, E. T. Neil, "Bayesian model averaging for analysis of lattice
+    field theory results", Phys. Rev. D 103 (2021) 114502.
+    """
+    names: list[str] = []
+    for fit in fits:
+        names.extend(n for n in fit.model.physical_names if n not in names)
+    n_samples = {fit.samples.shape[0] for fit in fits}
+    if len(n_samples) != 1:
+        raise FitError("", "all fits in an average must share the same jackknife samples; "
+                           f"got sample counts {sorted(n_samples)}")
+    (s_count,) = n_samples
+    central = np.full((len(fits), len(names)), np.nan)
+    samples = np.full((len(fits), s_count, len(names)), np.nan)
+    for i, fit in enumerate(fits):
+        for j, name in enumerate(fit.model.physical_names):
+            k = names.index(name)
+            central[i, k] = fit.central.physical[name]
+            samples[i, :, k] = fit.samples[:, j]
+    aic = np.array([fit.central.aic for fit in fits], dtype=float)
+    converged = np.array([fit.converged for fit in fits], dtype=bool)
+    return model_average(central, samples, aic, converged, names)

@@ -28,7 +28,7 @@ import numpy as np
 from plateaufit import __version__
 from plateaufit.atomic import write_text
 from plateaufit.errors import DataError, FitError, PlateaufitError, SpecError
-from plateaufit.fit.average import model_average
+from plateaufit.fit.average import average_fits
 from plateaufit.fit.correlated import CorrelatorFit, Prior
 from plateaufit.fit.derived import DerivedExpression, DerivedInput, evaluate_derived
 from plateaufit.fit.models import physical_parameter_names
@@ -164,41 +164,21 @@ def _scan_row(fit: CorrelatorFit, model: str, weight: float) -> dict[str, Any]:
 
 def _average_fits(fits: list[CorrelatorFit]) -> tuple[dict[str, dict[str, float]], np.ndarray,
                                                      int, dict[str, DerivedInput]]:
-    """Model-average every parameter over the fits that have it.
+    """Model-average every parameter over the fits that have it (see ``average_fits``).
 
-    A parameter such as E1 exists only in fits with two or more states; it is
-    averaged over those fits, their weights renormalised among them.
-    Returns the params entries, the weights of all fits (from E0, which every
-    fit has), the number of fits excluded for not converging, and for each
-    parameter its averaged value, jackknife samples ``sum_f w_f samples_f``
-    (the combination whose jackknife error is the averaged stat_error) and
-    sys_error, the inputs of derived quantities.
+    Returns the params entries, the weights of all fits, the number of fits
+    excluded for not converging, and for each parameter its averaged value,
+    jackknife samples and sys_error, the inputs of derived quantities.
     """
-    aic = np.array([f.central.aic for f in fits], dtype=float)
-    converged = np.array([f.converged for f in fits], dtype=bool)
-    names: list[str] = []
-    for f in fits:
-        names.extend(n for n in f.model.physical_names if n not in names)
+    avg = average_fits(fits)
     params: dict[str, dict[str, float]] = {}
     inputs: dict[str, DerivedInput] = {}
-    weights = np.zeros(len(fits))
-    n_excluded = int((~converged).sum())
-    for name in names:
-        members = [i for i, f in enumerate(fits) if name in f.model.physical_names]
-        if not converged[members].any():
-            continue
-        central = np.array([[fits[i].central.physical[name]] for i in members])
-        samples = np.stack([fits[i].samples[:, [fits[i].model.physical_names.index(name)]]
-                            for i in members])
-        avg = model_average(central, samples, aic[members], converged[members], [name])
+    for name in avg.names:
+        if not np.isfinite(avg.value[name]):
+            continue   # no converged fit has this parameter
         params[name] = _param_entry(avg.value[name], avg.stat_error[name], avg.sys_error[name])
-        # the averaged jackknife samples, combined exactly as model_average combines them
-        has = np.isfinite(central[:, 0]) & (avg.weights > 0)
-        w = avg.weights[has] / avg.weights[has].sum()
-        inputs[name] = DerivedInput(avg.value[name], w @ samples[has, :, 0], avg.sys_error[name])
-        if name == "E0":
-            weights[members] = avg.weights
-    return params, weights, n_excluded, inputs
+        inputs[name] = DerivedInput(avg.value[name], avg.samples[name], avg.sys_error[name])
+    return params, avg.weights, avg.n_excluded, inputs
 
 
 def _covariance_summary(fit: CorrelatorFit) -> dict[str, Any]:
@@ -296,7 +276,10 @@ def _run_fit(index: int, fit_spec: Any, spec: Any, binned: dict[str, np.ndarray]
                                 f"{chosen_fit.central.p_value:.3g}")
         shown = chosen_fit
     else:
-        params, weights, n_excluded, inputs = _average_fits(fits)
+        try:
+            params, weights, n_excluded, inputs = _average_fits(fits)
+        except FitError:
+            params = {}
         if not params:
             raise FitError(where, "no fit of the scan converged; narrow the ranges, add priors "
                                   "on the excited states, or give start values")
@@ -332,9 +315,9 @@ def _run_fit(index: int, fit_spec: Any, spec: Any, binned: dict[str, np.ndarray]
     for name in observables:
         em = effective_mass_jackknife(binned[name], kind=kind, time_extent=spec.ensemble.time_extent)
         effmass[name] = {"t": em.t, "value": em.value, "error": em.error, "kind": em.kind}
-    e0 = params["E0"]
-    log.info(f"fit {fit_spec.name}: E0 = {e0['value']:.6g} +- {e0['error']:.2g} "
-             f"({chosen['method']})")
+    first = "E0" if "E0" in params else next(iter(params))   # a formula has its own names
+    log.info(f"fit {fit_spec.name}: {first} = {params[first]['value']:.6g} "
+             f"+- {params[first]['error']:.2g} ({chosen['method']})")
     return {
         "observables": observables,
         "model": fit_spec.model,
