@@ -9,7 +9,8 @@ that the command line starts quickly):
   :func:`jackknife_covariance`, :func:`bootstrap_samples`
 - covariance: :func:`covariance_of_mean`, :class:`MeanCovariance`
 - effective masses: :func:`effective_mass`, :func:`effective_mass_jackknife`
-- fits: :func:`make_model`, :func:`fit_correlator`, :func:`scan`, :func:`model_average`
+- fits: :func:`make_model`, :func:`fit_correlator`, :func:`scan`, :func:`model_average`,
+  :func:`average_fits`, :func:`evaluate_derived`
 - data: :func:`load_correlator`, :func:`fold`
 - the whole job from a spec: :func:`run_spec`, :func:`load_spec`
 """
@@ -50,6 +51,8 @@ _EXPORTS: dict[str, str] = {
     "scan_points": "plateaufit.fit.scan",
     "aic_weights": "plateaufit.fit.average",
     "model_average": "plateaufit.fit.average",
+    "average_fits": "plateaufit.fit.average",
+    "evaluate_derived": "plateaufit.fit.derived",
     "load_correlator": "plateaufit.data.loaders",
     "fold": "plateaufit.data.transforms",
     "load_spec": "plateaufit.spec.schema",
