@@ -22,7 +22,7 @@ import numpy as np
 
 from plateaufit.data.ensemble import Ensemble
 from plateaufit.errors import FitError, PlateaufitError
-from plateaufit.spec.inputs import load_ensemble
+from plateaufit.spec.inputs import check_bin_size, load_ensemble
 from plateaufit.spec.schema import FitSpec, Spec, fit_n_params, load_spec
 
 __all__ = ["check_spec", "summarise"]
@@ -229,6 +229,7 @@ def summarise(spec: Spec, ensemble: Ensemble) -> str:
     else:
         bin_size = int(spec.binning.size)
         how = f"binning.size: {bin_size}; auto would choose {auto_size}"
+    check_bin_size(bin_size, counts)
     binned: dict[str, np.ndarray] = {}
     n_dropped = 0
     for name, series in ensemble.correlators.items():
@@ -253,6 +254,10 @@ def summarise(spec: Spec, ensemble: Ensemble) -> str:
     for index, fit in enumerate(spec.fits):
         lines.append("")
         lines += _fit_lines(spec, index, fit, binned, notes)
+    if spec.derived:
+        lines.append("")
+        lines.append("derived quantities (jackknife over the same bins as the fits):")
+        lines += [f"  {name} = {expression}" for name, expression in spec.derived.items()]
     lines.append("")
     if notes.items:
         lines.append(f"check passed with {len(notes.items)} warning(s):")

@@ -12,7 +12,7 @@ from pathlib import Path
 
 from plateaufit.data.ensemble import Ensemble, align_observables
 from plateaufit.data.loaders import RawCorrelator, load_correlator
-from plateaufit.errors import DataError
+from plateaufit.errors import DataError, SpecError
 from plateaufit.spec.schema import Spec
 
 __all__ = ["load_ensemble", "data_checksums", "observable_file"]
@@ -116,3 +116,30 @@ def data_checksums(spec: Spec) -> dict[str, str]:
                             f"cannot read {path} ({exc.strerror or exc})") from None
         out[name] = digest.hexdigest()
     return out
+
+
+def check_bin_size(bin_size: int, counts: list[int]) -> None:
+    """Refuse a bin size that empties a stream or leaves too few bins for a jackknife.
+
+    Parameters
+    ----------
+    bin_size : int
+        Configurations per bin.
+    counts : list of int
+        Configurations in each stream (bins never cross a stream boundary).
+
+    Raises
+    ------
+    SpecError
+        At ``binning.size``, naming the short streams and the largest usable size.
+    """
+    short = [i for i, n in enumerate(counts) if n < bin_size]
+    n_bins = sum(n // bin_size for n in counts)
+    if short:
+        listed = ", ".join(f"stream {i} has {counts[i]}" for i in short)
+        raise SpecError("binning.size", f"bins of {bin_size} configurations do not fit in every "
+                        f"stream ({listed}); choose a size of at most {min(counts)} "
+                        "or `auto`")
+    if n_bins < 2:
+        raise SpecError("binning.size", f"bins of {bin_size} give {n_bins} bin(s); a jackknife "
+                        "needs at least 2 -- choose a smaller size or `auto`")

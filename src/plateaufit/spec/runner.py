@@ -34,7 +34,7 @@ from plateaufit.fit.derived import DerivedExpression, DerivedInput, evaluate_der
 from plateaufit.fit.models import physical_parameter_names
 from plateaufit.fit.scan import scan, scan_points
 from plateaufit.parallel import make_executor
-from plateaufit.spec.inputs import data_checksums, load_ensemble
+from plateaufit.spec.inputs import check_bin_size, data_checksums, load_ensemble
 from plateaufit.spec.schema import fit_operators, fit_reference_names, load_spec
 from plateaufit.stats.autocorr import BinningWarning, ShortChainWarning, binning_study, choose_bin_size, tau_int
 from plateaufit.stats.effmass import effective_mass_jackknife
@@ -376,20 +376,6 @@ def _count_kwargs(fit_spec: Any, kwargs: dict[str, Any]) -> dict[str, Any]:
             "formula": kwargs["formula"]}
 
 
-def _check_bin_size(bin_size: int, counts: list[int]) -> None:
-    """Refuse a bin size that empties a stream or leaves too few bins for a jackknife."""
-    short = [i for i, n in enumerate(counts) if n < bin_size]
-    n_bins = sum(n // bin_size for n in counts)
-    if short:
-        listed = ", ".join(f"stream {i} has {counts[i]}" for i in short)
-        raise SpecError("binning.size", f"bins of {bin_size} configurations do not fit in every "
-                        f"stream ({listed}); choose a size of at most {min(counts)} "
-                        "or `auto`")
-    if n_bins < 2:
-        raise SpecError("binning.size", f"bins of {bin_size} give {n_bins} bin(s); a jackknife "
-                        "needs at least 2 -- choose a smaller size or `auto`")
-
-
 def _largest_fit_points(spec: Any, ensemble: Any) -> int:
     """Most data points any scan point of any fit has (all its observables)."""
     largest = 0
@@ -430,7 +416,7 @@ def _ensemble_section(spec: Any, ensemble: Any, log: _RunLog) -> tuple[dict[str,
                  f"({float(np.nanmax(np.concatenate(all_taus))):.2f})")
     else:
         bin_size = int(spec.binning.size)
-    _check_bin_size(bin_size, counts)
+    check_bin_size(bin_size, counts)
     binned: dict[str, np.ndarray] = {}
     n_dropped = 0
     n_bins = 0
