@@ -176,3 +176,55 @@ def test_formula_numbers_are_numpy_floats():
         m = make_model("formula", 1, ["x"], {"x": np.arange(3)}, T,
                        formula={"expression": expr, "params": {"a": 1.0}})
         assert np.all(check(m.predict(np.array([1.0]))))
+
+
+@pytest.mark.parametrize("form", ["exp", "cosh", "sinh"])
+@pytest.mark.parametrize("extras", [
+    {},
+    {"oscillating": 2, "constant": True},
+    {"oscillating": 1, "factorised": {"a": ("x", "x"), "b": ("x", "y")}},
+])
+def test_predict_and_jacobian_in_one_pass_equal_the_two_calls(form, extras):
+    rng = np.random.default_rng(8)
+    m = make_model(form, 3, ["a", "b"], {"a": np.arange(1, 7), "b": np.arange(2, 12)}, T,
+                   **extras)
+    theta = rng.normal(scale=0.3, size=(5, 2, m.n_params))
+    theta[..., 0] = 0.4
+    f, jac = m.predict_and_jacobian(theta)
+    np.testing.assert_array_equal(f, m.predict(theta))
+    np.testing.assert_array_equal(jac, m.jacobian(theta))
+    f1, jac1 = m.predict_and_jacobian(theta[3, 1])          # a single point
+    np.testing.assert_array_equal(f1, f[3, 1])
+    np.testing.assert_array_equal(jac1, jac[3, 1])
+    assert jac1.shape == (m.n_points, m.n_params)
+
+
+def test_a_formula_model_answers_predict_and_jacobian_with_its_own_methods():
+    m = make_model("formula", 1, ["a"], {"a": np.arange(2, 6)}, T,
+                   formula={"expression": "amp * exp(-m * t)", "params": {"amp": 1.0, "m": 0.5}})
+    theta = np.array([[2.0, 0.4], [1.0, 0.3]])
+    f, jac = m.predict_and_jacobian(theta)
+    np.testing.assert_array_equal(f, m.predict(theta))
+    np.testing.assert_array_equal(jac, m.jacobian(theta))
+
+
+@pytest.mark.parametrize("form", ["cosh", "sinh"])
+def test_backward_exponential_of_large_energies_is_computed_directly(form):
+    # exp(-E (T - t)) is formed as exp(-E T) / exp(-E t) only while |E| T < 700;
+    # beyond, exp(-E t) may underflow and the quotient would be 0/0. Rows of
+    # large |E| must give the written-out values, and every row the same
+    # value whatever batch it is evaluated in.
+    T48 = 48
+    t = np.arange(0, 25)
+    m = make_model(form, 1, ["a"], {"a": t}, T48)
+    theta = np.array([[0.3, 1.5], [20.0, 1.5], [-14.6, 1.5], [14.0, 1.5], [-12.0, 1.5]])
+    s = 1.0 if form == "cosh" else -1.0
+    expect = np.array([a * (np.exp(-e * t) + s * np.exp(-e * (T48 - t))) for e, a in theta])
+    f, jac = m.predict_and_jacobian(theta)
+    assert np.all(np.isfinite(f)) and np.all(np.isfinite(jac))
+    np.testing.assert_allclose(f, expect, rtol=1e-13)
+    dexpect = np.array([a * (-t * np.exp(-e * t) - s * (T48 - t) * np.exp(-e * (T48 - t)))
+                        for e, a in theta])
+    np.testing.assert_allclose(jac[:, :, 0], dexpect, rtol=1e-13)
+    for i in range(theta.shape[0]):
+        np.testing.assert_array_equal(m.predict(theta[i]), f[i])

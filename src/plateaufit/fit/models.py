@@ -232,6 +232,9 @@ def check_formula(expression: str, param_names: Iterable[str]) -> ast.Expression
 
 FORMS: tuple[str, ...] = ("exp", "cosh", "sinh", "formula")
 
+# |E| T below which exp(-E T) and exp(-E t), 0 <= t <= T, are normal floats.
+_QUOTIENT_LIMIT = 700.0
+
 
 def _energies(first: np.ndarray, lgaps: np.ndarray) -> np.ndarray:
     """Absolute energies ``E_n = E_{n-1} + exp(lgap_n)`` from ``E0`` and log-gaps."""
@@ -356,6 +359,12 @@ class CorrelatorModel:
         self._ph_c = slice(s + so + (s + so) * k, self.n_params)
         # precomputed point data
         self._t_back = self.time_extent - self.t
+        self._neg_t = -self.t
+        self._neg_t_back = -self._t_back
+        self._half_minus_t = 0.5 * self.time_extent - self.t
+        # both exponentials from one needs 0 <= t <= T (see _basis)
+        self._quotient_ok = bool(self.time_extent > 0 and np.all(self.t >= 0)
+                                 and np.all(self.t <= self.time_extent))
         self._sign = np.where(self.t.astype(np.int64) % 2 == 0, 1.0, -1.0)
         self._onehot_obs = np.zeros((self.n_points, n_obs))
         self._onehot_obs[np.arange(self.n_points), self.obs_index] = 1.0
@@ -414,26 +423,133 @@ class CorrelatorModel:
         return out
 
     # -- building blocks ------------------------------------------------------
-    def _basis(self, energies: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """g(E_n, t) and dg/dE for energies (..., m) -> (..., m, n_points) each."""
+    def _basis(self, energies: np.ndarray, derivative: bool = True
+               ) -> tuple[np.ndarray, np.ndarray | None]:
+        """g(E_n, t) and dg/dE for energies (..., m) -> (..., m, n_points) each.
+
+        For cosh and sinh both exponentials come from one: with
+        ``h = exp(-E T/2)`` and ``u = exp(E (T/2 - t))``, ``exp(-E t) = h u``
+        and ``exp(-E (T - t)) = h / u``. This is as accurate as two
+        exponentials (each carries the rounding of an argument of size
+        ``|E| T/2`` or less) and exact in the symmetry ``t -> T - t`` (a sinh
+        vanishes at ``t = T/2``), as long as ``h`` and ``u`` are normal
+        numbers, which ``|E| T < 700`` guarantees for ``0 <= t <= T``. Rows of
+        larger ``|E|`` are computed with two exponentials, so every row has
+        the same value whatever batch it is evaluated in.
+        """
         e = energies[..., :, None]
-        with np.errstate(over="ignore", invalid="ignore"):
-            fwd = np.exp(-e * self.t)
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
             if self.form == "exp":
-                return fwd, -self.t * fwd
-            bwd = np.exp(-e * self._t_back)
+                fwd = e * self._neg_t
+                np.exp(fwd, out=fwd)
+                return fwd, (self._neg_t * fwd if derivative else None)
+            if self._quotient_ok:
+                u = e * self._half_minus_t
+                np.exp(u, out=u)
+                h = np.exp(e * (-0.5 * self.time_extent))
+                fwd = h * u
+                bwd = np.divide(h, u, out=u)
+                large = ~(np.abs(e) < _QUOTIENT_LIMIT / self.time_extent)
+                if large.any():
+                    fwd = np.where(large, np.exp(e * self._neg_t), fwd)
+                    bwd = np.where(large, np.exp(e * self._neg_t_back), bwd)
+            else:
+                fwd = np.exp(e * self._neg_t)
+                bwd = np.exp(e * self._neg_t_back)
             if self.form == "cosh":
-                return fwd + bwd, -self.t * fwd - self._t_back * bwd
-            return fwd - bwd, -self.t * fwd + self._t_back * bwd
+                g = fwd + bwd
+                if not derivative:
+                    return g, None
+                fwd *= self._neg_t
+                bwd *= self._neg_t_back
+                fwd += bwd
+                return g, fwd
+            g = fwd - bwd
+            if not derivative:
+                return g, None
+            fwd *= self._neg_t
+            bwd *= self._neg_t_back
+            fwd -= bwd
+            return g, fwd
 
     def _amplitudes_at_points(self, amp: np.ndarray, m: int) -> tuple[np.ndarray, ...]:
-        """Amplitude of each state at each point, (..., m, n_points); plus Z factors."""
+        """Amplitude of each state at each point, (..., m, n_points); plus Z factors.
+
+        With one observable (and plain amplitudes) the last axis has length 1
+        and broadcasts over the points.
+        """
         mat = amp.reshape(amp.shape[:-1] + (m, len(self.amplitude_labels)))
         if self.operators is None:
+            if len(self.observables) == 1:
+                return (mat,)
             return (mat[..., self.obs_index],)
         zsrc = mat[..., self._src_index]
         zsnk = mat[..., self._snk_index]
         return zsrc * zsnk, zsrc, zsnk
+
+    def _block(self, theta: np.ndarray, first: int, m: int, sl_amp: slice,
+               sign: np.ndarray | None, out: np.ndarray, jt: np.ndarray | None) -> None:
+        """Add one family of states (ordinary or oscillating) to the prediction
+        ``out`` (..., n_points) and, when ``jt`` is given, write its rows of the
+        transposed Jacobian ``jt`` (..., n_params, n_points)."""
+        e0 = theta[..., first]
+        lg = theta[..., first + 1:first + m]
+        if m > 1:
+            gaps = np.exp(lg)
+            e = np.concatenate([e0[..., None], e0[..., None] + np.cumsum(gaps, axis=-1)],
+                               axis=-1)
+        else:
+            e = e0[..., None]
+        basis, dbasis = self._basis(e, derivative=jt is not None)
+        if sign is not None:
+            basis = basis * sign
+            if dbasis is not None:
+                dbasis *= sign
+        amps = self._amplitudes_at_points(theta[..., sl_amp], m)
+        out += np.einsum("...ij,...ij->...j", amps[0], basis)
+        if jt is None:
+            return
+        df_de = dbasis
+        df_de *= amps[0]                                    # (..., m, n_points)
+        # E_n = E0 + sum_{k<=n} exp(lgap_k): d/dE0 sums all, d/dlgap_k sums n >= k
+        # (accumulated from the top state down; a cumsum over the short state
+        # axis is several times slower)
+        acc = df_de[..., m - 1, :]
+        for n in range(m - 1, 0, -1):
+            np.multiply(acc, gaps[..., n - 1, None], out=jt[..., first + n, :])
+            acc = acc + df_de[..., n - 1, :]
+        jt[..., first, :] = acc
+        k = len(self.amplitude_labels)
+        rows = jt[..., sl_amp, :]
+        if self.operators is None:
+            if len(self.observables) == 1:
+                rows[...] = basis
+            else:
+                rows.reshape(rows.shape[:-2] + (m, k, self.n_points))[...] = (
+                    basis[..., :, None, :] * self._onehot_obs.T)
+        else:
+            _, zsrc, zsnk = amps
+            rows.reshape(rows.shape[:-2] + (m, k, self.n_points))[...] = basis[..., :, None, :] * (
+                zsnk[..., :, None, :] * self._onehot_src.T
+                + zsrc[..., :, None, :] * self._onehot_snk.T)
+
+    def _evaluate(self, theta: np.ndarray, jacobian: bool
+                  ) -> tuple[np.ndarray, np.ndarray | None]:
+        """Prediction (..., n_points) and transposed Jacobian (..., n_params, n_points)."""
+        theta = np.asarray(theta, dtype=float)
+        lead = theta.shape[:-1]
+        s, so = self.states, self.oscillating
+        out = np.zeros(lead + (self.n_points,))
+        jt = np.zeros(lead + (self.n_params, self.n_points)) if jacobian else None
+        with np.errstate(over="ignore", invalid="ignore"):
+            self._block(theta, 0, s, self._sl_A, None, out, jt)
+            if so:
+                self._block(theta, s, so, self._sl_Ao, self._sign, out, jt)
+        if self.constant:
+            out += theta[..., self._sl_c][..., self.obs_index]
+            if jt is not None:
+                jt[..., self._sl_c, :] = self._onehot_obs.T
+        return out, jt
 
     # -- public API -------------------------------------------------------------
     def energies(self, theta: np.ndarray) -> np.ndarray:
@@ -453,53 +569,7 @@ class CorrelatorModel:
         -------
         ndarray, (..., n_points)
         """
-        theta = np.asarray(theta, dtype=float)
-        s, so = self.states, self.oscillating
-        e = _energies(theta[..., 0], theta[..., 1:s])
-        basis, _ = self._basis(e)
-        amp = self._amplitudes_at_points(theta[..., self._sl_A], s)[0]
-        with np.errstate(over="ignore", invalid="ignore"):
-            out = np.einsum("...ij,...ij->...j", amp, basis)
-            if so:
-                eo = _energies(theta[..., s], theta[..., s + 1:s + so])
-                basis_o, _ = self._basis(eo)
-                amp_o = self._amplitudes_at_points(theta[..., self._sl_Ao], so)[0]
-                out = out + self._sign * np.einsum("...ij,...ij->...j", amp_o, basis_o)
-            if self.constant:
-                out = out + theta[..., self._sl_c][..., self.obs_index]
-        return out
-
-    def _energy_block(self, theta: np.ndarray, first: int, m: int, sl_amp: slice,
-                      sign: np.ndarray | None, jac: np.ndarray, col_e: int,
-                      sl_amp_cols: slice) -> None:
-        e0 = theta[..., first]
-        lg = theta[..., first + 1:first + m]
-        e = _energies(e0, lg)
-        basis, dbasis = self._basis(e)
-        if sign is not None:
-            basis = basis * sign
-            dbasis = dbasis * sign
-        amps = self._amplitudes_at_points(theta[..., sl_amp], m)
-        with np.errstate(over="ignore", invalid="ignore"):
-            df_de = amps[0] * dbasis                        # (..., m, n_points)
-            # E_n = E0 + sum_{k<=n} exp(lgap_k): d/dE0 sums all, d/dlgap_k sums n >= k
-            rev = np.cumsum(df_de[..., ::-1, :], axis=-2)[..., ::-1, :]
-            jac[..., :, col_e] = rev[..., 0, :]
-            if m > 1:
-                gaps = np.exp(lg)                           # (..., m-1)
-                jac[..., :, col_e + 1:col_e + m] = np.swapaxes(
-                    rev[..., 1:, :] * gaps[..., :, None], -1, -2)
-            k = len(self.amplitude_labels)
-            block = jac[..., :, sl_amp_cols]
-            if self.operators is None:
-                for n in range(m):
-                    block[..., :, n * k:(n + 1) * k] = basis[..., n, :, None] * self._onehot_obs
-            else:
-                _, zsrc, zsnk = amps
-                for n in range(m):
-                    block[..., :, n * k:(n + 1) * k] = basis[..., n, :, None] * (
-                        zsnk[..., n, :, None] * self._onehot_src
-                        + zsrc[..., n, :, None] * self._onehot_snk)
+        return self._evaluate(theta, False)[0]
 
     def jacobian(self, theta: np.ndarray) -> np.ndarray:
         """Analytic derivative of :meth:`predict` with respect to the internal parameters.
@@ -511,16 +581,34 @@ class CorrelatorModel:
         Returns
         -------
         ndarray, (..., n_points, n_params)
+            A transposed view of an array laid out (..., n_params, n_points).
         """
-        theta = np.asarray(theta, dtype=float)
-        jac = np.zeros(theta.shape[:-1] + (self.n_points, self.n_params))
-        s, so = self.states, self.oscillating
-        self._energy_block(theta, 0, s, self._sl_A, None, jac, 0, self._sl_A)
-        if so:
-            self._energy_block(theta, s, so, self._sl_Ao, self._sign, jac, s, self._sl_Ao)
-        if self.constant:
-            jac[..., :, self._sl_c] = self._onehot_obs
-        return jac
+        return np.swapaxes(self._evaluate(theta, True)[1], -1, -2)
+
+    def predict_and_jacobian(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """:meth:`predict` and :meth:`jacobian` in one pass (the exponentials once).
+
+        Parameters
+        ----------
+        theta : ndarray, (..., n_params)
+
+        Returns
+        -------
+        prediction : ndarray, (..., n_points)
+        jacobian : ndarray, (..., n_points, n_params)
+            As :meth:`jacobian` (a transposed view).
+
+        Notes
+        -----
+        A subclass that overrides :meth:`predict` or :meth:`jacobian` gets the
+        two calls of its own methods instead.
+        """
+        cls = type(self)
+        if cls.predict is not CorrelatorModel.predict or \
+                cls.jacobian is not CorrelatorModel.jacobian:
+            return self.predict(theta), self.jacobian(theta)
+        f, jt = self._evaluate(theta, True)
+        return f, np.swapaxes(jt, -1, -2)
 
     def to_physical(self, theta: np.ndarray) -> np.ndarray:
         """Internal parameters -> reported parameters (absolute energies), same shape."""
