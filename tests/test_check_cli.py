@@ -268,3 +268,34 @@ def test_unshrunk_singular_covariance_is_reported(capsys, project):
     assert code == 2
     assert "fits[0]" in err and "14 points" in err and "10 bins" in err
     assert "shrinkage" in err
+
+
+def test_check_and_fit_choose_the_same_automatic_bin_size(capsys, project, tmp_path):
+    # one rule, two users: check must report the bin size fit will use
+    import re
+
+    from plateaufit.spec.runner import run_spec
+
+    d, data = project
+    data["binning"]["size"] = "auto"
+    data["covariance"] = {"shrinkage": "none"}
+    code, out, err = run(capsys, d, data)
+    assert code == 0, err
+    size = int(re.search(r"binning: bin size (\d+)", out).group(1))
+    results = run_spec(d / "spec.yaml", tmp_path / "out", plots=False, jobs=1, progress=False)
+    assert results["ensemble"]["bin_size"] == size
+
+
+def test_without_shrinkage_auto_binning_keeps_more_bins_than_fit_points(tmp_path):
+    # an unshrunk covariance of p points needs more than p bins (exact: rank <= n_bins - 1)
+    from plateaufit.spec.inputs import minimum_bins
+    from plateaufit.spec.schema import validate_spec
+
+    data = {"ensemble": {"name": "wide", "time_extent": 64},
+            "observables": {"a": {"file": "a.txt"}, "b": {"file": "b.txt"}},
+            "covariance": {"shrinkage": "none"},
+            "fits": [{"name": "ab", "observables": ["a", "b"], "model": "cosh",
+                      "tmin": [2, 4], "tmax": 20}]}
+    assert minimum_bins(validate_spec(data, base_dir=tmp_path)) == 2 * 19 + 1
+    data["covariance"] = {"shrinkage": "ledoit-wolf"}
+    assert minimum_bins(validate_spec(data, base_dir=tmp_path)) == 20

@@ -22,7 +22,7 @@ import numpy as np
 
 from plateaufit.data.ensemble import Ensemble
 from plateaufit.errors import FitError, PlateaufitError
-from plateaufit.spec.inputs import check_bin_size, load_ensemble
+from plateaufit.spec.inputs import check_bin_size, load_ensemble, minimum_bins
 from plateaufit.spec.schema import FitSpec, Spec, fit_n_params, load_spec
 
 __all__ = ["check_spec", "summarise"]
@@ -78,12 +78,13 @@ def _all_taus(series: np.ndarray, streams: np.ndarray):
     return results
 
 
-def _bin_size(taus: np.ndarray, counts: list[int], notes: _Notes, label: str) -> int:
+def _bin_size(taus: np.ndarray, counts: list[int], notes: _Notes, label: str,
+              min_bins: int) -> int:
     from plateaufit.stats.autocorr import BinningWarning, choose_bin_size
 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", BinningWarning)
-        size = int(choose_bin_size(taus, counts))
+        size = int(choose_bin_size(taus, counts, min_bins=min_bins))
     for w in caught:
         if issubclass(w.category, BinningWarning):
             notes.add(f"{label}: {w.message}")
@@ -223,7 +224,9 @@ def summarise(spec: Spec, ensemble: Ensemble) -> str:
     counts = [int(n) for n in ensemble.stream_counts().values()]
     taus = {n: _all_taus(c, streams) for n, c in ensemble.correlators.items()}
     tau_values = {n: np.array([r.tau for r in res]) for n, res in taus.items()}
-    auto_size = _bin_size(np.concatenate(list(tau_values.values())), counts, notes, "binning")
+    least = minimum_bins(spec)
+    auto_size = _bin_size(np.concatenate(list(tau_values.values())), counts, notes, "binning",
+                          least)
     if spec.binning.size == "auto":
         bin_size, how = auto_size, "binning.size: auto, from the largest tau_int"
     else:
@@ -247,7 +250,7 @@ def summarise(spec: Spec, ensemble: Ensemble) -> str:
         notes.add(f"binning.size {bin_size} is below the {auto_size} the autocorrelation "
                   "suggests; errors may be underestimated")
     for name in ensemble.correlators:
-        own = _bin_size(tau_values[name], counts, notes, "binning")
+        own = _bin_size(tau_values[name], counts, notes, "binning", least)
         lines.append("")
         lines += _observable_lines(spec, ensemble, name, taus[name], own, bin_size,
                                    binned[name], notes)

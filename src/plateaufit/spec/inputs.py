@@ -143,3 +143,18 @@ def check_bin_size(bin_size: int, counts: list[int]) -> None:
     if n_bins < 2:
         raise SpecError("binning.size", f"bins of {bin_size} give {n_bins} bin(s); a jackknife "
                         "needs at least 2 -- choose a smaller size or `auto`")
+
+
+def minimum_bins(spec: Spec) -> int:
+    """Fewest bins ``binning.size: auto`` may leave.
+
+    20 bins (common practice: fewer make the jackknife covariance too noisy to
+    invert), and with ``covariance.shrinkage: none`` more bins than the
+    largest fit of the spec has data points, or its covariance is singular.
+    """
+    least = 20
+    if spec.covariance.shrinkage == "none":
+        for fit in spec.fits:
+            span = max(fit.tmax_values) - min(fit.tmin_values) + 1
+            least = max(least, span * len(fit.observables) + 1)
+    return least

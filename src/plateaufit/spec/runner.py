@@ -34,7 +34,7 @@ from plateaufit.fit.derived import DerivedExpression, DerivedInput, evaluate_der
 from plateaufit.fit.models import physical_parameter_names
 from plateaufit.fit.scan import scan, scan_points
 from plateaufit.parallel import make_executor
-from plateaufit.spec.inputs import check_bin_size, data_checksums, load_ensemble
+from plateaufit.spec.inputs import check_bin_size, data_checksums, load_ensemble, minimum_bins
 from plateaufit.spec.schema import fit_operators, fit_reference_names, load_spec
 from plateaufit.stats.autocorr import BinningWarning, ShortChainWarning, binning_study, choose_bin_size, tau_int
 from plateaufit.stats.effmass import effective_mass_jackknife
@@ -376,15 +376,6 @@ def _count_kwargs(fit_spec: Any, kwargs: dict[str, Any]) -> dict[str, Any]:
             "formula": kwargs["formula"]}
 
 
-def _largest_fit_points(spec: Any, ensemble: Any) -> int:
-    """Most data points any scan point of any fit has (all its observables)."""
-    largest = 0
-    for fit_spec in spec.fits:
-        span = max(fit_spec.tmax_values) - min(fit_spec.tmin_values) + 1
-        largest = max(largest, span * len(fit_spec.observables))
-    return largest
-
-
 def _ensemble_section(spec: Any, ensemble: Any, log: _RunLog) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
     """Autocorrelation, the bin size, and the binned data of every observable."""
     streams = ensemble.streams
@@ -402,13 +393,10 @@ def _ensemble_section(spec: Any, ensemble: Any, log: _RunLog) -> tuple[dict[str,
                      "tau_int is a lower bound there (the chains are short for their "
                      "autocorrelation)")
     if spec.binning.size == "auto":
-        min_bins = 20
-        if spec.covariance.shrinkage == "none":
-            # an unshrunk covariance needs more bins than the largest fit has points
-            min_bins = max(min_bins, _largest_fit_points(spec, ensemble) + 1)
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always", BinningWarning)
-            bin_size = int(choose_bin_size(np.concatenate(all_taus), counts, min_bins=min_bins))
+            bin_size = int(choose_bin_size(np.concatenate(all_taus), counts,
+                                           min_bins=minimum_bins(spec)))
         for w in caught:
             if issubclass(w.category, BinningWarning):
                 log.warn(f"binning.size: {w.message}")
