@@ -85,10 +85,13 @@ _LAM_GIVE_UP = 1e16
 # all, e.g. the energy of a state with zero amplitude). It changes the step,
 # never the fixed point.
 _REGULARISATION = 1e-14
-# Up to this many parameters the damped normal equations are solved by
-# vectorised elimination, beyond by LAPACK one matrix at a time (measured on
-# 200 samples: elimination 2-3x faster at 4 parameters, slower from about 10).
-_ELIMINATION_MAX = 8
+# With 3 to this many parameters and at least _ELIMINATION_MIN_SAMPLES samples
+# the damped normal equations are solved by elimination vectorised over the
+# samples, otherwise by LAPACK one matrix at a time (measured: at 200 samples
+# elimination is 1.3-1.7x faster for 3-4 parameters, even at 6 and slower
+# from about 10; at 20 samples LAPACK is 2-3x faster).
+_ELIMINATION_MAX = 6
+_ELIMINATION_MIN_SAMPLES = 96
 # Finished samples are dropped from the working arrays once they are at least
 # 1/_COMPACT_EVERY of them, and carried along masked until then. Compacting
 # every iteration, at 1/8, or never (compact=False) measured the same within
@@ -292,11 +295,12 @@ def _solve_shifted(scaled: np.ndarray, shift: np.ndarray | float,
     Gaussian elimination without pivoting, vectorised over the stack (stable
     for symmetric positive definite matrices; Golub & Van Loan, Matrix
     Computations, section 4.2, from memory). For more than
-    ``_ELIMINATION_MAX`` parameters LAPACK's batched solve is faster.
+    ``_ELIMINATION_MAX`` parameters or fewer than ``_ELIMINATION_MIN_SAMPLES``
+    matrices LAPACK's solve, one matrix at a time, is faster.
     """
     p = scaled.shape[0]
     diag = np.arange(p)
-    if p > _ELIMINATION_MAX:
+    if p > _ELIMINATION_MAX or scaled.shape[2] < _ELIMINATION_MIN_SAMPLES:
         mat = scaled.transpose(2, 0, 1).copy()
         mat[:, diag, diag] += np.reshape(shift, (-1, 1))
         return np.linalg.solve(mat, rhs.T[:, :, None])[:, :, 0].T
@@ -514,9 +518,14 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
         # One point for all: the residuals differ only through the data, and
         # the normal matrix is common, so the first linearisation is formed once.
         one = th[:, :1]
-        r = winv @ (model.predict(one.T)[0][:, None] - y_t)
+        if stack.together is not None:
+            f1, jac1 = stack.together(one.T)
+            jac1 = jac1.transpose(1, 2, 0)
+        else:
+            f1, jac1 = model.predict(one.T), None
+        r = winv @ (f1[0][:, None] - y_t)
         chi2 = np.einsum("im,im->m", r, r)
-        jw1, jp1 = stack.whitened_jacobian(one)
+        jw1, jp1 = stack.whitened_jacobian(one, jac=jac1)
         a1 = np.einsum("iam,ibm->abm", jw1, jw1)
         g = jw1[:, :, 0].T @ r
         rp = None
@@ -587,7 +596,7 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
         # q (the larger of the last two ratios of successive undamped steps)
         # the distance left after this step is about |step| q / (1 - q); with
         # no rate known yet, it is taken to be |step|.
-        gn_accept = accept & (lam == 0.0)
+        gn_accept = accept & (lam == 0.0) if damped else accept
         ratio2 = np.minimum(zz / last2, 1.0)          # 0 when no step is known yet
         q = np.sqrt(np.maximum(ratio2, last_ratio2))
         small = zz * (q / (1.0 - q)) ** 2 <= lin.tol2
@@ -596,8 +605,8 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
         small |= unresolved & (ratio2 >= 1.0)
         small |= (pred <= gain_floor) & (diff <= gain_floor)      # ftol test
         if masked:
-            accept &= ~done
-            gn_accept &= ~done
+            accept = accept & ~done
+            gn_accept = gn_accept & ~done
         conv = gn_accept & small
         last_ratio2 = np.where(gn_accept, np.where(ratio2 > 0, ratio2, 1.0), last_ratio2)
         last2 = np.where(gn_accept, zz, last2)

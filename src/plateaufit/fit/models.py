@@ -362,6 +362,9 @@ class CorrelatorModel:
         self._neg_t = -self.t
         self._neg_t_back = -self._t_back
         self._half_minus_t = 0.5 * self.time_extent - self.t
+        self._neg_t3 = self._neg_t[:, None, None]
+        self._neg_t_back3 = self._neg_t_back[:, None, None]
+        self._half_minus_t3 = self._half_minus_t[:, None, None]
         # both exponentials from one needs 0 <= t <= T (see _basis)
         self._quotient_ok = bool(self.time_extent > 0 and np.all(self.t >= 0)
                                  and np.all(self.t <= self.time_extent))
@@ -443,36 +446,35 @@ class CorrelatorModel:
         has the same value whatever batch it is evaluated in.
         """
         e = energies[None]
-        neg_t = self._neg_t[:, None, None]
-        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-            if self.form == "exp":
-                fwd = e * neg_t
-                np.exp(fwd, out=fwd)
-                return fwd, (neg_t * fwd if derivative else None)
-            neg_t_back = self._neg_t_back[:, None, None]
-            if self._quotient_ok:
-                u = e * self._half_minus_t[:, None, None]
-                np.exp(u, out=u)
-                h = np.exp(energies * (-0.5 * self.time_extent))
-                fwd = u * h
-                bwd = np.divide(h, u, out=u)
+        neg_t = self._neg_t3
+        if self.form == "exp":
+            fwd = e * neg_t
+            np.exp(fwd, out=fwd)
+            return fwd, (neg_t * fwd if derivative else None)
+        neg_t_back = self._neg_t_back3
+        if self._quotient_ok:
+            u = e * self._half_minus_t3
+            np.exp(u, out=u)
+            h = np.exp(energies * (-0.5 * self.time_extent))
+            fwd = u * h
+            bwd = np.divide(h, u, out=u)
+            if not (np.abs(energies) < _QUOTIENT_LIMIT / self.time_extent).all():
                 large = ~(np.abs(energies) < _QUOTIENT_LIMIT / self.time_extent)
-                if large.any():
-                    fwd = np.where(large, np.exp(e * neg_t), fwd)
-                    bwd = np.where(large, np.exp(e * neg_t_back), bwd)
-            else:
-                fwd = np.exp(e * neg_t)
-                bwd = np.exp(e * neg_t_back)
-            g = fwd + bwd if self.form == "cosh" else fwd - bwd
-            if not derivative:
-                return g, None
-            fwd *= neg_t
-            bwd *= neg_t_back
-            if self.form == "cosh":
-                fwd += bwd
-            else:
-                fwd -= bwd
-            return g, fwd
+                fwd = np.where(large, np.exp(e * neg_t), fwd)
+                bwd = np.where(large, np.exp(e * neg_t_back), bwd)
+        else:
+            fwd = np.exp(e * neg_t)
+            bwd = np.exp(e * neg_t_back)
+        g = fwd + bwd if self.form == "cosh" else fwd - bwd
+        if not derivative:
+            return g, None
+        fwd *= neg_t
+        bwd *= neg_t_back
+        if self.form == "cosh":
+            fwd += bwd
+        else:
+            fwd -= bwd
+        return g, fwd
 
     def _amplitudes_at_points(self, amp: np.ndarray, m: int) -> tuple[np.ndarray, ...]:
         """Amplitude of each state at each point, (n_points, m, B); plus Z factors.
@@ -491,10 +493,10 @@ class CorrelatorModel:
         return zsrc * zsnk, zsrc, zsnk
 
     def _block(self, theta: np.ndarray, first: int, m: int, sl_amp: slice,
-               sign: np.ndarray | None, out: np.ndarray, jt: np.ndarray | None) -> None:
-        """Add one family of states (ordinary or oscillating) to the prediction
-        ``out`` (n_points, B) and, when ``jt`` is given, write its columns of
-        the Jacobian ``jt`` (n_points, n_params, B)."""
+               sign: np.ndarray | None, jt: np.ndarray | None) -> np.ndarray:
+        """One family of states (ordinary or oscillating): its contribution to
+        the prediction, (n_points, B), and, when ``jt`` is given, its columns
+        of the Jacobian written into ``jt`` (n_points, n_params, B)."""
         e0 = theta[first]
         if m > 1:
             gaps = np.exp(theta[first + 1:first + m])            # (m-1, B)
@@ -511,11 +513,11 @@ class CorrelatorModel:
                 dbasis *= sign
         amps = self._amplitudes_at_points(theta[sl_amp], m)
         if amps[0].ndim == 2:
-            out += np.einsum("nmb,mb->nb", basis, amps[0])
+            out = np.einsum("nmb,mb->nb", basis, amps[0])
         else:
-            out += np.einsum("nmb,nmb->nb", basis, amps[0])
+            out = np.einsum("nmb,nmb->nb", basis, amps[0])
         if jt is None:
-            return
+            return out
         df_de = dbasis
         df_de *= amps[0]                                            # (n, m, B)
         # E_n = E0 + sum_{k<=n} exp(lgap_k): d/dE0 sums all, d/dlgap_k sums n >= k
@@ -538,6 +540,7 @@ class CorrelatorModel:
             rows.reshape((self.n_points, m, k) + rows.shape[2:])[...] = basis[:, :, None] * (
                 zsnk[:, :, None] * self._onehot_src[:, None, :, None]
                 + zsrc[:, :, None] * self._onehot_snk[:, None, :, None])
+        return out
 
     def _evaluate(self, theta: np.ndarray, jacobian: bool
                   ) -> tuple[np.ndarray, np.ndarray | None]:
@@ -551,13 +554,12 @@ class CorrelatorModel:
         th = np.ascontiguousarray(theta.reshape(-1, self.n_params).T)   # (p, B)
         n_batch = th.shape[1]
         s, so = self.states, self.oscillating
-        out = np.zeros((self.n_points, n_batch))
         # every column of the Jacobian is written by the blocks below
         jt = np.empty((self.n_points, self.n_params, n_batch)) if jacobian else None
-        with np.errstate(over="ignore", invalid="ignore"):
-            self._block(th, 0, s, self._sl_A, None, out, jt)
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            out = self._block(th, 0, s, self._sl_A, None, jt)
             if so:
-                self._block(th, s, so, self._sl_Ao, self._sign, out, jt)
+                out += self._block(th, s, so, self._sl_Ao, self._sign, jt)
         if self.constant:
             out += th[self._sl_c][self.obs_index]
             if jt is not None:
