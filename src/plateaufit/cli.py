@@ -8,6 +8,7 @@ become one line on stderr and exit status 2.
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 from collections.abc import Sequence
 
@@ -73,8 +74,27 @@ def _dispatch(args: argparse.Namespace) -> int:
     raise AssertionError(f"unhandled command {args.command!r}")  # argparse guarantees this
 
 
+#: BLAS thread pools the command line sizes to one thread unless the user set them
+_BLAS_THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
+
+
+def _one_blas_thread_per_process() -> None:
+    """Give each process one BLAS thread, unless the user chose otherwise.
+
+    The matrices of correlator fits are small (tens of timeslices), where a
+    threaded BLAS only spins, and scan points already run in parallel
+    processes (``--jobs``). Must run before numpy is first imported, which
+    ``main`` guarantees; worker processes inherit the setting.
+    """
+    if "numpy" in sys.modules:   # too late to matter (e.g. main() called from Python)
+        return
+    for name in _BLAS_THREAD_VARIABLES:
+        os.environ.setdefault(name, "1")
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; return the exit status (0 ok, 2 user error)."""
+    _one_blas_thread_per_process()
     args = _build_parser().parse_args(argv)
     try:
         return _dispatch(args)
