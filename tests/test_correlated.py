@@ -157,6 +157,24 @@ def test_refits_with_a_broken_sample_covariance_fail_that_sample_only():
     assert err.value.where == "engine"
 
 
+@pytest.mark.parametrize("engine", ["lmfit", "batched"])
+def test_per_sample_covariances_flag_nan_and_indefinite_samples_alike(engine):
+    model, y, cov, t, _ = _problem()
+    rng = np.random.default_rng(6)
+    samples = y + rng.normal(scale=0.002, size=(5, y.size)) * y
+    cov_s = np.tile(cov, (5, 1, 1)) * (1.0 + 0.05 * np.arange(5))[:, None, None]
+    cov_s[1, 0, 0] = np.nan                 # not finite
+    cov_s[3] = -cov_s[3]                    # not positive definite
+    central = correlated_fit(y, cov, model, starting_values(model, y, t))
+    refit = jackknife_refits(samples, model, central.theta, cov_samples=cov_s, engine=engine)
+    assert refit.converged.tolist() == [True, False, True, False, True]
+    assert np.isnan(refit.physical[[1, 3]]).all()
+    # every other sample is the correlated fit of its data with its own covariance
+    for s in (0, 2, 4):
+        one = correlated_fit(samples[s], cov_s[s], model, central.theta)
+        np.testing.assert_allclose(refit.physical[s], one.values, rtol=1e-8)
+
+
 def test_fit_correlator_records_what_results_need():
     binned = _binned()
     fit = fit_correlator(binned, form="cosh", states=2, tmin=3, tmax=15, time_extent=T,

@@ -186,7 +186,12 @@ def whitening_matrices(chol: np.ndarray) -> np.ndarray:
     if chol.ndim not in (2, 3) or chol.shape[-1] != chol.shape[-2]:
         raise ValueError(f"a Cholesky factor must have shape (n, n) or (S, n, n), "
                          f"got {chol.shape}")
-    stack = chol[None] if chol.ndim == 2 else chol
+    if chol.ndim == 2:     # one factor: no stack bookkeeping
+        if not (np.isfinite(chol).all() and np.all(np.diagonal(chol) != 0)):
+            return np.full(chol.shape, np.nan)
+        inv, info = scipy.linalg.lapack.dtrtri(chol, lower=1)
+        return np.tril(inv) if info == 0 else np.full(chol.shape, np.nan)
+    stack = chol
     out = np.full(stack.shape, np.nan)
     good = np.isfinite(stack).all(axis=(1, 2))
     good &= np.all(np.diagonal(stack, axis1=1, axis2=2) != 0, axis=1)
@@ -194,7 +199,7 @@ def whitening_matrices(chol: np.ndarray) -> np.ndarray:
         inv, info = scipy.linalg.lapack.dtrtri(np.tril(stack[s]), lower=1)
         if info == 0:
             out[s] = np.tril(inv)
-    return out[0] if chol.ndim == 2 else out
+    return out
 
 
 class _Stack:

@@ -40,6 +40,7 @@ from typing import Any
 import lmfit
 import numpy as np
 import scipy.linalg
+import scipy.linalg.lapack
 import scipy.stats
 
 from plateaufit.errors import FitError
@@ -325,7 +326,17 @@ def _cholesky(cov: np.ndarray, n_bins: int | None, where: str = "") -> np.ndarra
 
 
 def _whitener(chol: np.ndarray) -> np.ndarray:
-    return scipy.linalg.solve_triangular(chol, np.eye(chol.shape[0]), lower=True)
+    """``L^{-1}`` of a lower Cholesky factor with a positive diagonal.
+
+    LAPACK's triangular inverse (``dtrtri``) rather than a triangular solve
+    against the identity: the same result to rounding, and the solve goes
+    through a multi-threaded BLAS call that, on a busy machine, measured 6-11
+    ms instead of 20 us for a 16 x 16 factor (threads spinning).
+    """
+    inv, info = scipy.linalg.lapack.dtrtri(chol, lower=1)
+    if info != 0:      # not reached: _cholesky has checked the diagonal
+        return scipy.linalg.solve_triangular(chol, np.eye(chol.shape[0]), lower=True)
+    return np.tril(inv)
 
 
 class _Problem:
@@ -602,23 +613,27 @@ class RefitResult:
         return int(np.count_nonzero(~self.converged))
 
 
-def _sample_whiteners(cov_samples: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Cholesky factors and their inverses per sample; NaN where not positive definite."""
+def _sample_factors(cov_samples: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Cholesky factors per sample; NaN and ``ok = False`` where not positive definite.
+
+    The whole stack is factorised in one call; only when that fails (some
+    matrix not positive definite) one matrix at a time.
+    """
     s, n, _ = cov_samples.shape
-    chol = np.full((s, n, n), np.nan)
-    winv = np.full((s, n, n), np.nan)
-    ok = np.zeros(s, dtype=bool)
-    for i in range(s):
-        c = cov_samples[i]
-        if not np.all(np.isfinite(c)):
-            continue
-        try:
-            chol_i = np.linalg.cholesky(c)
-        except np.linalg.LinAlgError:
-            continue
-        if np.all(np.diagonal(chol_i) > 0):
-            chol[i], winv[i], ok[i] = chol_i, _whitener(chol_i), True
-    return chol, winv, ok
+    ok = np.isfinite(cov_samples).all(axis=(1, 2))
+    work = np.where(ok[:, None, None], cov_samples, np.eye(n))
+    try:
+        chol = np.linalg.cholesky(work)
+    except np.linalg.LinAlgError:
+        chol = np.zeros_like(work)
+        for i in range(s):
+            try:
+                chol[i] = np.linalg.cholesky(work[i])
+            except np.linalg.LinAlgError:
+                ok[i] = False
+    ok &= np.all(np.diagonal(chol, axis1=1, axis2=2) > 0, axis=1)
+    chol[~ok] = np.nan
+    return chol, ok
 
 
 def _lmfit_loop(y_samples, model, start, winv_of, rows, prior, lo, hi, tol, max_nfev):
@@ -690,23 +705,31 @@ def jackknife_refits(y_samples: np.ndarray, model: CorrelatorModel, start: np.nd
     n_s = y_samples.shape[0]
     prior = prior_terms(model, priors)
     lo, hi = internal_bounds(model, bounds)
+    # The whitening matrices are needed only by the lmfit loop (the engine, or
+    # the fallback for samples the batched engine hands back): formed on demand.
+    whiteners: dict[int, np.ndarray] = {}
     if cov is not None:
         chol = _cholesky(np.asarray(cov, dtype=float), n_s)
-        winv = _whitener(chol)
         chol_samples = None
 
         def winv_of(s: int) -> np.ndarray:
-            return winv
+            if -1 not in whiteners:
+                whiteners[-1] = _whitener(chol)
+            return whiteners[-1]
     else:
         cov_samples = np.asarray(cov_samples, dtype=float)
         if cov_samples.shape != (n_s, model.n_points, model.n_points):
             raise FitError("", f"per-sample covariances must have shape ({n_s}, "
                            f"{model.n_points}, {model.n_points}), got {cov_samples.shape}")
         chol = None
-        chol_samples, winv_s, ok_s = _sample_whiteners(cov_samples)
+        chol_samples, ok_s = _sample_factors(cov_samples)
 
         def winv_of(s: int) -> np.ndarray | None:
-            return winv_s[s] if ok_s[s] else None
+            if not ok_s[s]:
+                return None
+            if s not in whiteners:
+                whiteners[s] = _whitener(chol_samples[s])
+            return whiteners[s]
 
     batched_refits = None
     if engine in ("auto", "batched"):
