@@ -206,7 +206,7 @@ class _Stack:
     """Whitened residuals and normal equations of the samples still iterating.
 
     Arrays are batch-last: parameters ``(p, m)``, data and residuals
-    ``(n, m)``, Jacobians ``(n, p, m)``, normal matrices ``(p, p, m)``, per-sample
+    ``(n, m)``, Jacobians ``(p, n, m)``, normal matrices ``(p, p, m)``, per-sample
     whitening matrices ``(n, n, m)``. Every array operation then runs along the
     long sample axis instead of the short point and parameter axes, which for
     a few hundred samples of a few parameters is several times faster.
@@ -233,23 +233,23 @@ class _Stack:
 
     @staticmethod
     def whiten(winv: np.ndarray, d: np.ndarray) -> np.ndarray:
-        """``L^{-1} d`` for residuals (n, m) or Jacobians (n, p, m)."""
+        """``L^{-1} d`` for residuals (n, m) or Jacobians (p, n, m)."""
         if winv.ndim == 2:
-            # One matrix product for the whole stack: (n, n) @ (n, p m).
-            return (winv @ d.reshape(d.shape[0], -1)).reshape(d.shape)
+            # (n, n) @ (n, m), once per parameter for a Jacobian
+            return np.matmul(winv, d)
         if d.ndim == 2:
             return np.einsum("ijm,jm->im", winv, d)
-        return np.einsum("ijm,jam->iam", winv, d)
+        return np.einsum("ijm,ajm->aim", winv, d)
 
     def residuals(self, theta: np.ndarray
                   ) -> tuple[np.ndarray, np.ndarray | None, np.ndarray, np.ndarray | None]:
         """Whitened data residuals (n, m), prior residuals (k, m), chi2 (m,), and
-        the model Jacobian (n, p, m) at ``theta`` (p, m) when the model gives it
+        the model Jacobian (p, n, m) at ``theta`` (p, m) when the model gives it
         with the prediction."""
         jac = None
         if self.together is not None:
             f, jac = self.together(theta.T)
-            jac = jac.transpose(1, 2, 0)
+            jac = jac.transpose(2, 1, 0)
         else:
             f = self.model.predict(theta.T)
         r = self.whiten(self.winv, f.T - self.y)
@@ -264,14 +264,14 @@ class _Stack:
     def whitened_jacobian(self, theta: np.ndarray, rows: np.ndarray | None = None,
                           jac: np.ndarray | None = None
                           ) -> tuple[np.ndarray, np.ndarray | None]:
-        """Whitened Jacobian (n, p, m) and prior Jacobian (k, p, m) at ``theta`` (p, m).
+        """Whitened Jacobian (p, n, m) and prior Jacobian (k, p, m) at ``theta`` (p, m).
 
-        ``jac``, the model Jacobian (n, p, m) at ``theta`` if already known,
+        ``jac``, the model Jacobian (p, n, m) at ``theta`` if already known,
         saves its evaluation.
         """
         winv = self._winv(rows)
         if jac is None:
-            jac = self.model.jacobian(theta.T).transpose(1, 2, 0)
+            jac = self.model.jacobian(theta.T).transpose(2, 1, 0)
         jw = self.whiten(winv, jac)
         jp = None
         if self.prior is not None:
@@ -284,8 +284,9 @@ class _Stack:
     def normal(jw: np.ndarray, jp: np.ndarray | None, r: np.ndarray,
                rp: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
         """Normal matrix J^T J (p, p, m) and gradient J^T r (p, m)."""
-        a = np.einsum("iam,ibm->abm", jw, jw)
-        g = np.einsum("iam,im->am", jw, r)
+        # contraction over the middle axis: twice as fast as over the first
+        a = np.einsum("aim,bim->abm", jw, jw)
+        g = np.einsum("aim,im->am", jw, r)
         if jp is not None:
             a += np.einsum("kam,kbm->abm", jp, jp)
             g += np.einsum("kam,km->am", jp, rp)
@@ -525,14 +526,14 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
         one = th[:, :1]
         if stack.together is not None:
             f1, jac1 = stack.together(one.T)
-            jac1 = jac1.transpose(1, 2, 0)
+            jac1 = jac1.transpose(2, 1, 0)
         else:
             f1, jac1 = model.predict(one.T), None
         r = winv @ (f1[0][:, None] - y_t)
         chi2 = np.einsum("im,im->m", r, r)
         jw1, jp1 = stack.whitened_jacobian(one, jac=jac1)
-        a1 = np.einsum("iam,ibm->abm", jw1, jw1)
-        g = jw1[:, :, 0].T @ r
+        a1 = np.einsum("aim,bim->abm", jw1, jw1)
+        g = jw1[:, :, 0] @ r
         rp = None
         if prior is not None:
             index, mean, width = prior

@@ -362,9 +362,9 @@ class CorrelatorModel:
         self._neg_t = -self.t
         self._neg_t_back = -self._t_back
         self._half_minus_t = 0.5 * self.time_extent - self.t
-        self._neg_t3 = self._neg_t[:, None, None]
-        self._neg_t_back3 = self._neg_t_back[:, None, None]
-        self._half_minus_t3 = self._half_minus_t[:, None, None]
+        self._neg_t2 = self._neg_t[:, None]
+        self._neg_t_back2 = self._neg_t_back[:, None]
+        self._half_minus_t2 = self._half_minus_t[:, None]
         # both exponentials from one needs 0 <= t <= T (see _basis)
         self._quotient_ok = bool(self.time_extent > 0 and np.all(self.t >= 0)
                                  and np.all(self.t <= self.time_extent))
@@ -427,13 +427,14 @@ class CorrelatorModel:
 
     # -- building blocks ------------------------------------------------------
     # The evaluation works batch-last: parameters (n_params, B), values
-    # (n_points, B), Jacobian (n_points, n_params, B), so that every array
-    # operation runs along the long batch axis instead of the short point or
-    # state axes (several times faster for a stack of jackknife samples). The
-    # public methods return transposed views in the documented shapes.
+    # (n_points, B), Jacobian (n_params, n_points, B), state bases
+    # (states, n_points, B), so that every array operation runs along the
+    # long batch axis instead of the short point or state axes (several times
+    # faster for a stack of jackknife samples). The public methods return
+    # transposed views in the documented shapes.
     def _basis(self, energies: np.ndarray, derivative: bool = True
                ) -> tuple[np.ndarray, np.ndarray | None]:
-        """g(E_n, t) and dg/dE for energies (m, B) -> (n_points, m, B) each.
+        """g(E_n, t) and dg/dE for energies (m, B) -> (m, n_points, B) each.
 
         For cosh and sinh both exponentials come from one: with
         ``h = exp(-E T/2)`` and ``u = exp(E (T/2 - t))``, ``exp(-E t) = h u``
@@ -445,21 +446,21 @@ class CorrelatorModel:
         of larger ``|E|`` are computed with two exponentials, so every column
         has the same value whatever batch it is evaluated in.
         """
-        e = energies[None]
-        neg_t = self._neg_t3
+        e = energies[:, None, :]
+        neg_t = self._neg_t2
         if self.form == "exp":
             fwd = e * neg_t
             np.exp(fwd, out=fwd)
             return fwd, (neg_t * fwd if derivative else None)
-        neg_t_back = self._neg_t_back3
+        neg_t_back = self._neg_t_back2
         if self._quotient_ok:
-            u = e * self._half_minus_t3
+            u = e * self._half_minus_t2
             np.exp(u, out=u)
-            h = np.exp(energies * (-0.5 * self.time_extent))
+            h = np.exp(e * (-0.5 * self.time_extent))
             fwd = u * h
             bwd = np.divide(h, u, out=u)
             if not (np.abs(energies) < _QUOTIENT_LIMIT / self.time_extent).all():
-                large = ~(np.abs(energies) < _QUOTIENT_LIMIT / self.time_extent)
+                large = ~(np.abs(e) < _QUOTIENT_LIMIT / self.time_extent)
                 fwd = np.where(large, np.exp(e * neg_t), fwd)
                 bwd = np.where(large, np.exp(e * neg_t_back), bwd)
         else:
@@ -477,26 +478,25 @@ class CorrelatorModel:
         return g, fwd
 
     def _amplitudes_at_points(self, amp: np.ndarray, m: int) -> tuple[np.ndarray, ...]:
-        """Amplitude of each state at each point, (n_points, m, B); plus Z factors.
+        """Amplitude of each state at each point, (m, n_points, B); plus Z factors.
 
         ``amp`` is (m * n_labels, B). With one observable (and plain
-        amplitudes) the result is (m, B) and broadcasts over the points.
+        amplitudes) the result is (m, 1, B) and broadcasts over the points.
         """
         mat = amp.reshape((m, len(self.amplitude_labels)) + amp.shape[1:])
         if self.operators is None:
             if len(self.observables) == 1:
-                return (mat[:, 0],)
-            return (mat.transpose(1, 0, 2)[self.obs_index],)
-        by_label = mat.transpose(1, 0, 2)
-        zsrc = by_label[self._src_index]
-        zsnk = by_label[self._snk_index]
+                return (mat,)
+            return (mat[:, self.obs_index],)
+        zsrc = mat[:, self._src_index]
+        zsnk = mat[:, self._snk_index]
         return zsrc * zsnk, zsrc, zsnk
 
     def _block(self, theta: np.ndarray, first: int, m: int, sl_amp: slice,
                sign: np.ndarray | None, jt: np.ndarray | None) -> np.ndarray:
         """One family of states (ordinary or oscillating): its contribution to
-        the prediction, (n_points, B), and, when ``jt`` is given, its columns
-        of the Jacobian written into ``jt`` (n_points, n_params, B)."""
+        the prediction, (n_points, B), and, when ``jt`` is given, its rows of
+        the Jacobian written into ``jt`` (n_params, n_points, B)."""
         e0 = theta[first]
         if m > 1:
             gaps = np.exp(theta[first + 1:first + m])            # (m-1, B)
@@ -505,41 +505,41 @@ class CorrelatorModel:
             np.add(e0, np.cumsum(gaps, axis=0), out=e[1:])
         else:
             e = e0[None]
-        basis, dbasis = self._basis(e, derivative=jt is not None)   # (n, m, B)
+        basis, dbasis = self._basis(e, derivative=jt is not None)   # (m, n, B)
         if sign is not None:
-            sign = sign[:, None, None]
+            sign = sign[None, :, None]
             basis = basis * sign
             if dbasis is not None:
                 dbasis *= sign
         amps = self._amplitudes_at_points(theta[sl_amp], m)
-        if amps[0].ndim == 2:
-            out = np.einsum("nmb,mb->nb", basis, amps[0])
+        if amps[0].shape[1] == 1:
+            out = np.einsum("mnb,mb->nb", basis, amps[0][:, 0])
         else:
-            out = np.einsum("nmb,nmb->nb", basis, amps[0])
+            out = np.einsum("mnb,mnb->nb", basis, amps[0])
         if jt is None:
             return out
         df_de = dbasis
-        df_de *= amps[0]                                            # (n, m, B)
+        df_de *= amps[0]                                            # (m, n, B)
         # E_n = E0 + sum_{k<=n} exp(lgap_k): d/dE0 sums all, d/dlgap_k sums n >= k
         # (accumulated from the top state down)
-        acc = df_de[:, m - 1]
+        acc = df_de[m - 1]
         for n in range(m - 1, 0, -1):
-            np.multiply(acc, gaps[n - 1], out=jt[:, first + n])
-            acc = acc + df_de[:, n - 1]
-        jt[:, first] = acc
+            np.multiply(acc, gaps[n - 1], out=jt[first + n])
+            acc = acc + df_de[n - 1]
+        jt[first] = acc
         k = len(self.amplitude_labels)
-        rows = jt[:, sl_amp]                                        # (n, m k, B)
+        rows = jt[sl_amp]                                           # (m k, n, B)
         if self.operators is None:
             if len(self.observables) == 1:
                 rows[...] = basis
             else:
-                rows.reshape((self.n_points, m, k) + rows.shape[2:])[...] = (
-                    basis[:, :, None] * self._onehot_obs[:, None, :, None])
+                rows.reshape((m, k) + rows.shape[1:])[...] = (
+                    basis[:, None] * self._onehot_obs.T[None, :, :, None])
         else:
             _, zsrc, zsnk = amps
-            rows.reshape((self.n_points, m, k) + rows.shape[2:])[...] = basis[:, :, None] * (
-                zsnk[:, :, None] * self._onehot_src[:, None, :, None]
-                + zsrc[:, :, None] * self._onehot_snk[:, None, :, None])
+            rows.reshape((m, k) + rows.shape[1:])[...] = basis[:, None] * (
+                zsnk[:, None] * self._onehot_src.T[None, :, :, None]
+                + zsrc[:, None] * self._onehot_snk.T[None, :, :, None])
         return out
 
     def _evaluate(self, theta: np.ndarray, jacobian: bool
@@ -554,8 +554,8 @@ class CorrelatorModel:
         th = np.ascontiguousarray(theta.reshape(-1, self.n_params).T)   # (p, B)
         n_batch = th.shape[1]
         s, so = self.states, self.oscillating
-        # every column of the Jacobian is written by the blocks below
-        jt = np.empty((self.n_points, self.n_params, n_batch)) if jacobian else None
+        # every row of the Jacobian is written by the blocks below
+        jt = np.empty((self.n_params, self.n_points, n_batch)) if jacobian else None
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
             out = self._block(th, 0, s, self._sl_A, None, jt)
             if so:
@@ -563,11 +563,11 @@ class CorrelatorModel:
         if self.constant:
             out += th[self._sl_c][self.obs_index]
             if jt is not None:
-                jt[:, self._sl_c] = self._onehot_obs[:, :, None]
+                jt[self._sl_c] = self._onehot_obs.T[:, :, None]
         f = out.T.reshape(lead + (self.n_points,))
         if jt is None:
             return f, None
-        return f, jt.transpose(2, 0, 1).reshape(lead + (self.n_points, self.n_params))
+        return f, jt.transpose(2, 1, 0).reshape(lead + (self.n_points, self.n_params))
 
     # -- public API -------------------------------------------------------------
     def energies(self, theta: np.ndarray) -> np.ndarray:
@@ -599,7 +599,7 @@ class CorrelatorModel:
         Returns
         -------
         ndarray, (..., n_points, n_params)
-            A view of an array laid out batch-last, (n_points, n_params, ...).
+            A view of an array laid out batch-last, (n_params, n_points, ...).
         """
         return self._evaluate(theta, True)[1]
 
