@@ -379,8 +379,10 @@ def print_report(res: dict) -> None:
     line = "-" * 78
     print(line)
     env = res["environment"]
+    end = env.get("load_average_end")
     print(f"plateaufit benchmarks -- {env['label']} (load average "
-          f"{env['load_average'][0]:.1f} on {env['cpus']} CPUs at the start)")
+          f"{env['load_average'][0]:.1f} on {env['cpus']} CPUs at the start"
+          + (f", {end[0]:.1f} at the end)" if end else ")"))
     print(line)
     if a:
         print(f"{'Workload A':<46}{'value':>14}  {'target':>8}  ")
@@ -446,16 +448,19 @@ def print_report(res: dict) -> None:
           "central fits contain their own covariance checks.)")
 
 
+def load_average() -> tuple[float, float, float]:
+    try:
+        return os.getloadavg()
+    except OSError:
+        return (float("nan"),) * 3
+
+
 def environment(label: str) -> dict:
     keys = ("OPENBLAS_NUM_THREADS", "OPENBLAS_CORETYPE", "OPENBLAS_L2_SIZE",
             "OMP_NUM_THREADS", "MKL_NUM_THREADS")
-    try:
-        load = os.getloadavg()
-    except OSError:
-        load = (float("nan"),) * 3
     return {"label": label, "python": sys.version.split()[0], "numpy": np.__version__,
             "machine": platform.machine(), "cpus": os.cpu_count(),
-            "load_average": load, "env": {k: os.environ.get(k) for k in keys}}
+            "load_average": load_average(), "env": {k: os.environ.get(k) for k in keys}}
 
 
 def run_all(args) -> dict:
@@ -463,6 +468,8 @@ def run_all(args) -> dict:
     res["A"] = workload_a(2 if args.quick else 5, args.profile)
     if not args.skip_b:
         res["B"] = workload_b()
+    # the machine may be shared: the load at the end tells whether it changed
+    res["environment"]["load_average_end"] = load_average()
     return res
 
 
