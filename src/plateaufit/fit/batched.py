@@ -338,8 +338,8 @@ class _Linearisation:
 
     def __init__(self, a: np.ndarray, g: np.ndarray, theta: np.ndarray, xtol: float) -> None:
         diag = np.arange(a.shape[0])
-        d = np.sqrt(a[diag, diag])
-        self.finite = np.isfinite(d.sum(axis=0) + g.sum(axis=0) + a.sum(axis=(0, 1)))
+        d = np.sqrt(a[diag, diag])        # a diagonal of sums of squares: never negative
+        self.finite = np.isfinite(g.sum(axis=0) + a.sum(axis=(0, 1)))
         d = np.where(d > 0, d, 1.0)
         self.d = d
         self.scaled = a / (d[:, None] * d[None, :])
@@ -558,10 +558,12 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
     def floors(chi2, zscale):
         floor = units * (np.sqrt(chi2) * zscale + chi2)
         gain = ftol * chi2
-        # the chi2-change test applies only where chi2 can resolve it
-        return floor, np.where(gain > floor, gain, -1.0)
+        # the chi2-change test applies only where chi2 can resolve it; no
+        # rounding test can fire for a predicted gain above both floors
+        gain_floor = np.where(gain > floor, gain, -1.0)
+        return floor, gain_floor, np.maximum(floor, gain_floor)
 
-    floor, gain_floor = floors(chi2, zscale)
+    floor, gain_floor, near_floor = floors(chi2, zscale)
     lam = np.zeros(m)
     nu = np.full(m, 2.0)
     last2 = np.full(m, np.inf)        # |D delta|^2 of the last accepted GN step
@@ -596,8 +598,12 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
         diff = chi2 - chi2_t                                       # NaN for a bad trial
         # A step whose predicted gain is below the rounding floor of chi2
         # cannot be judged by chi2: take it on the quadratic model's word.
-        unresolved = (pred <= floor) & (diff >= -4.0 * floor)
-        accept = (diff > 0) | unresolved
+        near = bool((pred <= near_floor).any())    # else no rounding test applies
+        if near:
+            unresolved = (pred <= floor) & (diff >= -4.0 * floor)
+            accept = (diff > 0) | unresolved
+        else:
+            accept = diff > 0
         # Convergence, on undamped steps only. With linear convergence at rate
         # q (the larger of the last two ratios of successive undamped steps)
         # the distance left after this step is about |step| q / (1 - q); with
@@ -607,9 +613,10 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
         q = np.sqrt(np.maximum(ratio2, last_ratio2))
         small = zz * (q / (1.0 - q)) ** 2 <= lin.tol2
         small |= (zz <= lin.tol2) & (last_ratio2 == 1.0)
-        # Round-off reached: unresolvable steps that no longer shrink.
-        small |= unresolved & (ratio2 >= 1.0)
-        small |= (pred <= gain_floor) & (diff <= gain_floor)      # ftol test
+        if near:
+            # Round-off reached: unresolvable steps that no longer shrink.
+            small |= unresolved & (ratio2 >= 1.0)
+            small |= (pred <= gain_floor) & (diff <= gain_floor)  # ftol test
         if masked:
             accept = accept & ~done
             gn_accept = gn_accept & ~done
@@ -628,7 +635,7 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
             chi2 = np.where(accept, chi2_t, chi2)
         if damped or not all_accepted:
             # Nielsen's update on accepted damped steps; nu-fold increase on rejection.
-            rho = np.where(unresolved, 1.0, diff / pred)
+            rho = np.where(unresolved, 1.0, diff / pred) if near else diff / pred
             shrink = np.maximum(1.0 / 3.0, 1.0 - (2.0 * np.clip(rho, 0.0, 1.0) - 1.0) ** 3)
             lam = np.where(accept, lam * shrink, np.where(lam == 0.0, _LAM_START, lam * nu))
             nu = np.where(accept | (lam == _LAM_START), 2.0, 2.0 * nu)
@@ -657,8 +664,8 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
             rp = None if rp is None else rp[:, keep]
             stack = stack.keep(keep)
             lin.take(keep)
-            lam, nu, zscale, floor, gain_floor = (lam[keep], nu[keep], zscale[keep],
-                                                  floor[keep], gain_floor[keep])
+            lam, nu, zscale = lam[keep], nu[keep], zscale[keep]
+            floor, gain_floor, near_floor = floor[keep], gain_floor[keep], near_floor[keep]
             last2, last_ratio2, ok, done = last2[keep], last_ratio2[keep], ok[keep], done[keep]
             n_done = 0
 
@@ -667,7 +674,7 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
         if need.all():
             jw, jp = stack.whitened_jacobian(th, jac=jac_t)
             lin = _Linearisation(*stack.normal(jw, jp, r, rp), th, xtol)
-            floor, gain_floor = floors(chi2, zscale)
+            floor, gain_floor, near_floor = floors(chi2, zscale)
         elif need.any():
             idx = np.flatnonzero(need)
             jw, jp = stack.whitened_jacobian(th[:, idx], rows=idx,
@@ -676,7 +683,7 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
                                                  None if rp is None else rp[:, idx]),
                                    th[:, idx], xtol)
             lin.put(idx, fresh)
-            floor[idx], gain_floor[idx] = floors(chi2[idx], zscale[idx])
+            floor[idx], gain_floor[idx], near_floor[idx] = floors(chi2[idx], zscale[idx])
         else:
             continue
         done |= ~lin.finite

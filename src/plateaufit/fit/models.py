@@ -459,7 +459,7 @@ class CorrelatorModel:
             h = np.exp(e * (-0.5 * self.time_extent))
             fwd = u * h
             bwd = np.divide(h, u, out=u)
-            if not (np.abs(energies) < _QUOTIENT_LIMIT / self.time_extent).all():
+            if not np.abs(energies).max() < _QUOTIENT_LIMIT / self.time_extent:   # NaN too
                 large = ~(np.abs(e) < _QUOTIENT_LIMIT / self.time_extent)
                 fwd = np.where(large, np.exp(e * neg_t), fwd)
                 bwd = np.where(large, np.exp(e * neg_t_back), bwd)
