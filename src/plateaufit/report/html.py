@@ -265,6 +265,15 @@ def _section_data(results: Mapping[str, Any]) -> str:
     return "".join(out)
 
 
+def _truth_cells(value: float, total: float, truth: Any) -> list[str]:
+    """The truth and the pull (value - truth) / total error, as two table cells."""
+    tv = _num(truth)
+    pull = ((value - tv) / total if math.isfinite(tv) and math.isfinite(total) and total > 0
+            else math.nan)
+    return [_e(_fmt(tv, ".6g") if math.isfinite(tv) else "—"),
+            _e(f"{pull:+.2f}" if math.isfinite(pull) else "—")]
+
+
 def _section_results(results: Mapping[str, Any]) -> str:
     truth_all = results.get("truth") or {}
     out = ['<section id="results"><h2>Results</h2>',
@@ -311,11 +320,7 @@ def _section_results(results: Mapping[str, Any]) -> str:
             cells = [_e(pname), _e(_ve(v, tot)), _e(both), _e(_fmt(stat, ".2g")),
                      _e(_fmt(sys_, ".2g"))]
             if has_truth:
-                tv = _num(truth.get(pname))
-                pull = ((v - tv) / tot if math.isfinite(tv) and math.isfinite(tot) and tot > 0
-                        else math.nan)
-                cells += [_e(_fmt(tv, ".6g") if math.isfinite(tv) else "—"),
-                          _e(f"{pull:+.2f}" if math.isfinite(pull) else "—")]
+                cells += _truth_cells(v, tot, truth.get(pname))
             out.append(_row(cells, num=numeric))
         out.append("</table></div>")
     out.append("</section>")
@@ -353,11 +358,7 @@ def _section_derived(results: Mapping[str, Any]) -> str:
         cells = [_e(name), f"<code>{_e(entry.get('expression', ''))}</code>", _e(_ve(v, tot)),
                  _e(both), _e(_fmt(stat, ".2g")), _e(_fmt(sys_, ".2g"))]
         if has_truth:
-            tv = _num(truth.get(name))
-            pull = ((v - tv) / tot if math.isfinite(tv) and math.isfinite(tot) and tot > 0
-                    else math.nan)
-            cells += [_e(_fmt(tv, ".6g") if math.isfinite(tv) else "—"),
-                      _e(f"{pull:+.2f}" if math.isfinite(pull) else "—")]
+            cells += _truth_cells(v, tot, truth.get(name))
         out.append(_row(cells, num=numeric))
     out.append("</table></div></section>")
     return "".join(out)
