@@ -103,19 +103,20 @@ def data_checksums(spec: Spec) -> dict[str, str]:
     dict
         NAME -> hex digest of the file's bytes.
     """
-    out: dict[str, str] = {}
-    for name in spec.observables:
-        path = observable_file(spec, name)
-        digest = hashlib.sha256()
-        try:
-            with open(path, "rb") as handle:
-                for block in iter(lambda: handle.read(1 << 20), b""):
-                    digest.update(block)
-        except OSError as exc:
-            raise DataError(f"observables.{name}.file",
-                            f"cannot read {path} ({exc.strerror or exc})") from None
-        out[name] = digest.hexdigest()
-    return out
+    return {name: file_sha256(observable_file(spec, name), f"observables.{name}.file")
+            for name in spec.observables}
+
+
+def file_sha256(path: Path, where: str = "") -> str:
+    """SHA-256 (hex) of a file's bytes, read in blocks; DataError at ``where`` if unreadable."""
+    digest = hashlib.sha256()
+    try:
+        with open(path, "rb") as handle:
+            for block in iter(lambda: handle.read(1 << 20), b""):
+                digest.update(block)
+    except OSError as exc:
+        raise DataError(where or str(path), f"cannot read {path} ({exc.strerror or exc})") from None
+    return digest.hexdigest()
 
 
 def check_bin_size(bin_size: int, counts: list[int]) -> None:

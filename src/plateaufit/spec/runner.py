@@ -4,8 +4,9 @@
 autocorrelation, bins, runs every fit's scan (central fits and jackknife
 refits), chooses or averages, evaluates the derived quantities (``derived:``,
 with the jackknife samples of the chosen or averaged parameters, so the
-correlations between fits on the same bins are kept), and writes results.json, the tables, the log,
-and (optionally) the plots and the report page. Nothing is written until all
+correlations between fits on the same bins are kept), and writes
+results.json, the tables, the log, and (optionally) the plots and the
+report page. Nothing is written until all
 fitting is done, every file is written atomically, and results.json is written
 last, so its presence means a complete run.
 """
@@ -13,7 +14,6 @@ last, so its presence means a complete run.
 from __future__ import annotations
 
 import datetime as _dt
-import hashlib
 import json
 import os
 import platform
@@ -31,12 +31,13 @@ from plateaufit.errors import DataError, FitError, PlateaufitError, SpecError
 from plateaufit.fit.average import average_fits
 from plateaufit.fit.correlated import CorrelatorFit, Prior
 from plateaufit.fit.derived import DerivedExpression, DerivedInput, evaluate_derived
-from plateaufit.fit.models import physical_parameter_names
 from plateaufit.fit.scan import scan, scan_points
 from plateaufit.parallel import make_executor
-from plateaufit.spec.inputs import check_bin_size, data_checksums, load_ensemble, minimum_bins
+from plateaufit.spec.inputs import (check_bin_size, data_checksums, file_sha256, load_ensemble,
+                                    minimum_bins)
 from plateaufit.spec.schema import fit_operators, fit_reference_names, load_spec
-from plateaufit.stats.autocorr import BinningWarning, ShortChainWarning, binning_study, choose_bin_size, tau_int
+from plateaufit.stats.autocorr import (BinningWarning, ShortChainWarning, binning_study,
+                                      choose_bin_size, tau_int)
 from plateaufit.stats.effmass import effective_mass_jackknife
 from plateaufit.stats.resample import bin_samples
 
@@ -94,19 +95,6 @@ def _autocorrelation(series: np.ndarray, streams: np.ndarray) -> tuple[_Autocorr
         rho=np.asarray(r.rho), tau_by_window=np.asarray(r.tau_by_window),
     )
     return summary, taus
-
-
-def _per_stream_counts(streams: np.ndarray) -> list[int]:
-    _, counts = np.unique(streams, return_counts=True)
-    return [int(c) for c in counts]
-
-
-def _sha256_file(path: Path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as handle:
-        for block in iter(lambda: handle.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 def _jsonable(obj: Any) -> Any:
@@ -379,7 +367,7 @@ def _count_kwargs(fit_spec: Any, kwargs: dict[str, Any]) -> dict[str, Any]:
 def _ensemble_section(spec: Any, ensemble: Any, log: _RunLog) -> tuple[dict[str, Any], dict[str, np.ndarray]]:
     """Autocorrelation, the bin size, and the binned data of every observable."""
     streams = ensemble.streams
-    counts = _per_stream_counts(streams)
+    counts = list(ensemble.stream_counts().values())
     autocorr: dict[str, _Autocorrelation] = {}
     all_taus = []
     for name, series in ensemble.correlators.items():
@@ -538,7 +526,7 @@ def run_spec(path: str | Path, out: str | Path | None = None, *, plots: bool = T
         "provenance": {
             "version": __version__,
             "spec": str(spec_path),
-            "spec_sha256": _sha256_file(spec_path),
+            "spec_sha256": file_sha256(spec_path),
             "data_sha256": data_checksums(spec),
             "seeds": {},
             "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
