@@ -89,3 +89,26 @@ def test_identical_fits_average_to_themselves_with_no_systematic():
     expected = math.sqrt(19 / 20 * np.sum((one - one.mean()) ** 2))
     assert math.isclose(avg.stat_error["E0"], expected, rel_tol=1e-12)
     assert math.isclose(avg.error["E0"], avg.stat_error["E0"], rel_tol=1e-9)
+
+
+def test_a_fit_with_a_non_positive_ground_state_gets_no_weight():
+    # a runaway fit (E0 <= 0) is excluded like a non-converged one (common practice)
+    from types import SimpleNamespace
+
+    from plateaufit.fit.average import average_fits
+
+    rng = np.random.default_rng(5)
+
+    def fake(e0, aic):
+        samples = e0 + 1e-3 * rng.standard_normal((20, 1))
+        return SimpleNamespace(model=SimpleNamespace(physical_names=("E0",)),
+                               central=SimpleNamespace(physical={"E0": e0}, aic=aic),
+                               samples=samples, converged=True)
+
+    fits = [fake(0.30, 10.0), fake(-0.05, 2.0), fake(0.31, 11.0)]
+    avg = average_fits(fits)
+    assert avg.weights[1] == 0.0
+    assert avg.n_excluded == 1
+    w = np.exp(-0.5 * np.array([0.0, 1.0]))
+    w /= w.sum()
+    assert avg.value["E0"] == pytest.approx(w @ [0.30, 0.31])

@@ -238,6 +238,13 @@ def average_fits(fits: Sequence[Any]) -> ModelAverage:
         Over the union of the fits' parameter names, in order of first
         appearance; ``weights`` are the weights of all fits.
 
+    Notes
+    -----
+    A fit whose central ground-state energy ``E0`` is not positive describes
+    no decaying correlator (a runaway in which another state took over, or the
+    amplitude collapsed); like a fit that did not converge it gets weight 0
+    and is counted in ``n_excluded`` (common practice).
+
     References
     ----------
     W. I. Jay, E. T. Neil, "Bayesian model averaging for analysis of lattice
@@ -260,4 +267,10 @@ def average_fits(fits: Sequence[Any]) -> ModelAverage:
             samples[i, :, k] = fit.samples[:, j]
     aic = np.array([fit.central.aic for fit in fits], dtype=float)
     converged = np.array([fit.converged for fit in fits], dtype=bool)
-    return model_average(central, samples, aic, converged, names)
+    return model_average(central, samples, aic, converged & physical_ground_state(fits), names)
+
+
+def physical_ground_state(fits: Sequence[Any]) -> np.ndarray:
+    """Per fit: False where the central fit's ``E0`` exists and is not positive."""
+    return np.array([not (fit.central.physical.get("E0", 1.0) <= 0.0) for fit in fits],
+                    dtype=bool)

@@ -273,7 +273,7 @@ def _run_fit(index: int, fit_spec: Any, spec: Any, binned: dict[str, np.ndarray]
                                   "on the excited states, or give start values")
         if n_excluded:
             fit_warnings.append(f"fit {fit_spec.name}: {n_excluded} of {len(fits)} scan points did "
-                                "not converge and were given weight 0")
+                                "not converge or ended with E0 <= 0, and were given weight 0")
         shown = fits[int(np.argmax(weights))]
         chosen = {"method": "average", "tmin": shown.tmin, "tmax": shown.tmax,
                   "states": shown.states, "params": params, "n_fits": len(fits),
