@@ -281,6 +281,11 @@ def plot_stability(fit_name: str, fit: Mapping[str, Any],
         axes = fig.subplots(len(energies), 1, sharex=True, squeeze=False)[:, 0]
         for ax, name in zip(axes, energies):
             shown_lo, shown_hi, n_hidden = [], [], 0
+            c = params.get(name) or {}
+            cv, ce = _num(c.get("value")), _num(c.get("error"))
+            # an error bar much wider than the chosen result's error would squash the plot:
+            # such bars run off the axes instead of setting its range
+            reach = 5.0 * ce if math.isfinite(ce) and ce > 0 else math.inf
             for p in scan:
                 entry = (p.get("params") or {}).get(name)
                 if entry is None:
@@ -303,10 +308,13 @@ def plot_stability(fit_name: str, fit: Mapping[str, Any],
                             markerfacecolor="none" if low_p else color,
                             markeredgewidth=0.7, elinewidth=0.6, capsize=0, zorder=3 + rel)
                 if (not low_p) or rel > 1e-3:
-                    shown_lo.append(v - (e if math.isfinite(e) else 0))
-                    shown_hi.append(v + (e if math.isfinite(e) else 0))
-            c = params.get(name) or {}
-            cv, ce = _num(c.get("value")), _num(c.get("error"))
+                    bar = min(e, reach) if math.isfinite(e) else 0.0
+                    shown_lo.append(v - bar)
+                    shown_hi.append(v + bar)
+                elif not math.isfinite(cv) or abs(v - cv) <= 4.0 * reach:
+                    # a poor fit near the result shows how the plateau is approached
+                    shown_lo.append(v)
+                    shown_hi.append(v)
             label = "average" if method == "average" else "chosen"
             if math.isfinite(cv):
                 ax.axhspan(cv - ce, cv + ce, color=AVERAGE_COLOR if method == "average"
