@@ -231,6 +231,9 @@ def check_formula(expression: str, param_names: Iterable[str]) -> ast.Expression
 # ---------------------------------------------------------------------------
 
 FORMS: tuple[str, ...] = ("exp", "cosh", "sinh", "formula")
+#: the effective mass (plateaufit.stats.effmass kind) that shows each form's plateau
+EFFECTIVE_MASS_KIND: dict[str, str] = {"cosh": "cosh", "sinh": "sinh", "exp": "log",
+                                       "formula": "log"}
 
 # |E| T below which exp(-E T) and exp(-E t), 0 <= t <= T, are normal floats.
 _QUOTIENT_LIMIT = 700.0

@@ -22,13 +22,13 @@ import numpy as np
 
 from plateaufit.data.ensemble import Ensemble
 from plateaufit.errors import FitError, PlateaufitError
+from plateaufit.fit.models import EFFECTIVE_MASS_KIND
 from plateaufit.spec.inputs import check_bin_size, load_ensemble, minimum_bins
 from plateaufit.spec.schema import FitSpec, Spec, fit_n_params, load_spec
 
 __all__ = ["check_spec", "summarise"]
 
 TAU_CONVENTION = "tau_int (1/2 + sum rho convention)"
-_MODEL_EFFMASS = {"cosh": "cosh", "sinh": "sinh", "exp": "log", "formula": "log"}
 _N_SHOWN = 4  # timeslices shown for tau_int and the effective mass
 
 
@@ -95,7 +95,7 @@ def _effmass_kind(spec: Spec, ens: Ensemble, name: str) -> str:
     """The model of the first fit using the observable; else from the boundary."""
     for fit in spec.fits:
         if name in fit.observables:
-            return _MODEL_EFFMASS[fit.model]
+            return EFFECTIVE_MASS_KIND[fit.model]
     if ens.boundaries[name] == "periodic":
         return "cosh"
     if ens.boundaries[name] == "antiperiodic" and ens.folded[name]:

@@ -31,6 +31,7 @@ from plateaufit.errors import DataError, FitError, PlateaufitError, SpecError
 from plateaufit.fit.average import average_fits
 from plateaufit.fit.correlated import CorrelatorFit, Prior
 from plateaufit.fit.derived import DerivedExpression, DerivedInput, evaluate_derived
+from plateaufit.fit.models import EFFECTIVE_MASS_KIND
 from plateaufit.fit.scan import scan, scan_points
 from plateaufit.parallel import make_executor
 from plateaufit.spec.inputs import (check_bin_size, data_checksums, file_sha256, load_ensemble,
@@ -43,7 +44,6 @@ from plateaufit.stats.resample import bin_samples
 
 __all__ = ["run_spec"]
 
-_EFFMASS_KIND = {"cosh": "cosh", "sinh": "sinh", "exp": "log", "formula": "log"}
 _LOW_P_VALUE = 0.05
 _STRONG_SHRINKAGE = 0.5
 
@@ -298,7 +298,7 @@ def _run_fit(index: int, fit_spec: Any, spec: Any, binned: dict[str, np.ndarray]
     for message in fit_warnings:
         log.warn(message)
 
-    kind = _EFFMASS_KIND[fit_spec.model]
+    kind = EFFECTIVE_MASS_KIND[fit_spec.model]
     effmass = {}
     for name in observables:
         em = effective_mass_jackknife(binned[name], kind=kind, time_extent=spec.ensemble.time_extent)
