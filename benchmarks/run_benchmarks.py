@@ -144,8 +144,9 @@ class StageClock:
 
 @contextlib.contextmanager
 def stage_clock(capture: int = 0):
-    import plateaufit.fit.batched as batched
-    import plateaufit.fit.correlated as correlated
+
+    import plateaufit.fit.correlator_fit as correlator_fit
+    import plateaufit.fit.refits as refits
     import plateaufit.stats.covariance as covariance
     import plateaufit.stats.resample as resample
 
@@ -159,11 +160,11 @@ def stage_clock(capture: int = 0):
     def on_refits(args, kwargs, out):
         clock.fallbacks += int(out.n_fallback)
 
-    clock.wrap(batched, "batched_refits", "refits: batched engine", on_batched)
-    clock.wrap(correlated, "jackknife_refits", "refits: total (incl. lmfit fallback)",
+    clock.wrap(refits, "batched_refits", "refits: batched engine", on_batched)
+    clock.wrap(correlator_fit, "jackknife_refits", "refits: total (incl. lmfit fallback)",
                on_refits)
-    clock.wrap(correlated, "correlated_fit", "central fits (lmfit)")
-    clock.wrap(correlated, "starting_values", "starting values")
+    clock.wrap(correlator_fit, "correlated_fit", "central fits (lmfit)")
+    clock.wrap(correlator_fit, "starting_values", "starting values")
     clock.wrap(covariance, "covariance_of_mean", "covariance of the mean")
     clock.wrap(covariance, "per_sample_covariances", "per-sample covariances")
     clock.wrap(resample, "jackknife_samples", "jackknife samples")
@@ -203,7 +204,7 @@ def peak_memory(fn) -> tuple[float, float]:
 
 def lmfit_subset(fits, n_fits: int, binned, engine: str = "lmfit") -> tuple[float, int, list]:
     """Time jackknife refits of a few scan fits with the given engine."""
-    from plateaufit.fit.correlated import jackknife_refits
+    from plateaufit.fit.refits import jackknife_refits
     from plateaufit.stats.resample import jackknife_samples
 
     chosen = np.linspace(0, len(fits) - 1, n_fits).round().astype(int)

@@ -15,8 +15,9 @@ import scipy.optimize
 from scipy.linalg import solve_triangular
 
 from plateaufit.errors import FitError
-from plateaufit.fit.batched import batched_cholesky, batched_refits, whitening_matrices
-from plateaufit.fit.correlated import jackknife_refits
+from plateaufit.fit.batched import batched_refits
+from plateaufit.fit.refits import jackknife_refits
+from plateaufit.fit.whitening import batched_cholesky, whitening_matrices
 from plateaufit.fit.models import make_model
 
 T = 40
@@ -206,7 +207,7 @@ def test_bad_shapes_are_refused(problem):
 
 
 def test_seam_in_correlated_uses_the_engine_without_fallback(problem):
-    # jackknife_refits (plateaufit.fit.correlated) is the caller: its batched
+    # jackknife_refits (plateaufit.fit.refits) is the caller: its batched
     # engine should need no lmfit fallback on good data, and agree with its
     # own lmfit engine (the central fit's minimiser) to 1e-8 relative.
     model, x, y_samples, cov, chol, start = problem

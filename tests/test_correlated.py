@@ -6,8 +6,10 @@ import numpy as np
 import pytest
 
 from plateaufit.errors import FitError
-from plateaufit.fit.correlated import (Prior, correlated_fit, fit_correlator,
-                                       internal_bounds, jackknife_refits)
+from plateaufit.fit.central import correlated_fit
+from plateaufit.fit.constraints import Prior, internal_bounds
+from plateaufit.fit.correlator_fit import fit_correlator
+from plateaufit.fit.refits import jackknife_refits
 from plateaufit.fit.guesses import starting_values
 from plateaufit.fit.models import make_model
 

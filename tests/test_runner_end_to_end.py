@@ -30,7 +30,7 @@ import pytest
 import yaml
 
 from plateaufit.data.transforms import fold
-from plateaufit.fit.correlated import fit_correlator
+from plateaufit.fit.correlator_fit import fit_correlator
 from plateaufit.spec.runner import run_spec
 from plateaufit.stats.resample import bin_samples, jackknife_error
 

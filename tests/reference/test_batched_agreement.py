@@ -28,8 +28,9 @@ import pytest
 import scipy.optimize
 from scipy.linalg import solve_triangular
 
-from plateaufit.fit.batched import batched_cholesky, batched_refits
-from plateaufit.fit.correlated import Prior
+from plateaufit.fit.batched import batched_refits
+from plateaufit.fit.constraints import Prior
+from plateaufit.fit.whitening import batched_cholesky
 from plateaufit.fit.models import make_model
 
 RTOL = 1e-8

@@ -72,8 +72,9 @@ def test_formula_numerical_jacobian_equals_analytic_derivative():
 import scipy.optimize  # noqa: E402
 import scipy.stats  # noqa: E402
 
-from plateaufit.fit.correlated import (aic, correlated_fit, fit_correlator,  # noqa: E402
-                                       hotelling_p_value)
+from plateaufit.fit.central import correlated_fit  # noqa: E402
+from plateaufit.fit.correlator_fit import fit_correlator  # noqa: E402
+from plateaufit.fit.criteria import aic, hotelling_p_value  # noqa: E402
 from plateaufit.fit.guesses import starting_values  # noqa: E402
 
 

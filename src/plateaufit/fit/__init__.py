@@ -1,7 +1,9 @@
 """fit subpackage: correlator models, starting values, correlated fits, scans, averages."""
 
-from plateaufit.fit.correlated import (CentralFit, CorrelatorFit, Prior, RefitResult,
-                                       correlated_fit, fit_correlator, jackknife_refits)
+from plateaufit.fit.central import CentralFit, correlated_fit
+from plateaufit.fit.constraints import Prior
+from plateaufit.fit.correlator_fit import CorrelatorFit, fit_correlator
+from plateaufit.fit.refits import RefitResult, jackknife_refits
 from plateaufit.fit.average import ModelAverage, aic_weights, average_fits, model_average
 from plateaufit.fit.derived import DerivedExpression, DerivedInput, DerivedResult, evaluate_derived
 from plateaufit.fit.guesses import starting_values

@@ -21,9 +21,9 @@ with ``L_s`` the lower Cholesky factor of the covariance used for that sample
 and optional Gaussian priors on the *reported* parameters
 ``P = model.to_physical(theta)``.
 
-Bounds follow the central fit (:mod:`plateaufit.fit.correlated`), which maps
+Bounds follow the central fit (:mod:`plateaufit.fit.central`), which maps
 bounds on reported parameters to a box on the internal ones
-(:func:`~plateaufit.fit.correlated.internal_bounds`) and minimises inside that
+(:func:`~plateaufit.fit.constraints.internal_bounds`) and minimises inside that
 box. Here trial points are projected onto the same box, and a sample whose
 solution ends on a face of the box is reported *not converged*, so that the
 caller refits it with the central fit's bounded minimiser. A solution strictly
@@ -74,11 +74,11 @@ from collections.abc import Mapping
 from typing import Any, Protocol
 
 import numpy as np
-import scipy.linalg.lapack
 
-from plateaufit.fit.correlated import internal_bounds, prior_terms
+from plateaufit.fit.constraints import internal_bounds, prior_terms
+from plateaufit.fit.whitening import whitening_matrices
 
-__all__ = ["batched_cholesky", "batched_refits", "whitening_matrices"]
+__all__ = ["batched_refits", "BatchedModel"]
 
 # Damping schedule. The first trial of every sample is a pure Gauss-Newton
 # step (lam = 0; the warm start is close to the minimum). A rejected step sets
@@ -125,90 +125,6 @@ class BatchedModel(Protocol):
     def jacobian(self, theta: np.ndarray) -> np.ndarray: ...
     def to_physical(self, theta: np.ndarray) -> np.ndarray: ...
     def physical_jacobian(self, theta: np.ndarray) -> np.ndarray: ...
-
-
-def batched_cholesky(cov_samples: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Lower Cholesky factors of a stack of covariance matrices.
-
-    Parameters
-    ----------
-    cov_samples : ndarray, shape (S, n, n)
-        Symmetric covariance matrices, e.g. one per jackknife sample.
-
-    Returns
-    -------
-    chol : ndarray, shape (S, n, n)
-        ``chol[s] @ chol[s].T == cov_samples[s]``, lower triangular. Rows of
-        ``ok == False`` are filled with NaN.
-    ok : ndarray of bool, shape (S,)
-        False where the matrix holds non-finite values or is not positive
-        definite; such a sample cannot be fitted with its own covariance.
-
-    Notes
-    -----
-    The whole stack is factorised in one call; only when that call reports a
-    failure is the stack factorised one matrix at a time, to find which
-    matrices failed.
-    """
-    cov = np.asarray(cov_samples, dtype=float)
-    if cov.ndim != 3 or cov.shape[1] != cov.shape[2]:
-        raise ValueError(f"cov_samples must have shape (S, n, n), got {cov.shape}")
-    ok = np.isfinite(cov).all(axis=(1, 2))
-    work = np.where(ok[:, None, None], cov, np.eye(cov.shape[1]))
-    try:
-        chol = np.linalg.cholesky(work)
-    except np.linalg.LinAlgError:
-        chol = np.zeros_like(work)
-        for s in range(work.shape[0]):
-            try:
-                chol[s] = np.linalg.cholesky(work[s])
-            except np.linalg.LinAlgError:
-                ok[s] = False
-    # A zero or negative diagonal (semi-definite input let through) cannot whiten.
-    ok &= np.all(np.diagonal(chol, axis1=1, axis2=2) > 0, axis=1)
-    ok &= np.isfinite(chol).all(axis=(1, 2))
-    chol[~ok] = np.nan
-    return chol, ok
-
-
-def whitening_matrices(chol: np.ndarray) -> np.ndarray:
-    """Inverses of lower Cholesky factors: the matrices that whiten residuals.
-
-    Parameters
-    ----------
-    chol : ndarray, shape (n, n) or (S, n, n)
-        Lower Cholesky factor(s) ``L`` of the covariance, ``C = L L^T``.
-
-    Returns
-    -------
-    ndarray, same shape
-        ``L^{-1}`` (lower triangular), so that
-        ``|L^{-1} (f - y)|^2 = (f - y)^T C^{-1} (f - y)``. NaN for a factor
-        that holds non-finite values or a zero on its diagonal.
-
-    Notes
-    -----
-    Forming ``L^{-1}`` once turns the whitening of every residual vector and
-    Jacobian of every iteration into a matrix product.
-    """
-    chol = np.asarray(chol, dtype=float)
-    if chol.ndim not in (2, 3) or chol.shape[-1] != chol.shape[-2]:
-        raise ValueError(f"a Cholesky factor must have shape (n, n) or (S, n, n), "
-                         f"got {chol.shape}")
-    if chol.ndim == 2:     # one factor: no stack bookkeeping
-        if not (np.isfinite(chol).all() and np.all(np.diagonal(chol) != 0)):
-            return np.full(chol.shape, np.nan)
-        inv, info = scipy.linalg.lapack.dtrtri(chol, lower=1)
-        return np.tril(inv) if info == 0 else np.full(chol.shape, np.nan)
-    stack = chol
-    out = np.full(stack.shape, np.nan)
-    good = np.isfinite(stack).all(axis=(1, 2))
-    good &= np.all(np.diagonal(stack, axis1=1, axis2=2) != 0, axis=1)
-    for s in np.flatnonzero(good):
-        inv, info = scipy.linalg.lapack.dtrtri(np.tril(stack[s]), lower=1)
-        if info == 0:
-            out[s] = np.tril(inv)
-    return out
 
 
 class _Stack:
@@ -416,7 +332,8 @@ def batched_refits(y_samples: np.ndarray, model: BatchedModel, start: np.ndarray
     chol : ndarray, shape (n, n), optional
         Lower Cholesky factor of the frozen covariance shared by all samples.
     chol_samples : ndarray, shape (S, n, n), optional
-        One lower Cholesky factor per sample (see :func:`batched_cholesky`); a
+        One lower Cholesky factor per sample (see
+        :func:`plateaufit.fit.whitening.batched_cholesky`); a
         sample whose factor holds NaN is reported not converged. Give exactly
         one of ``chol`` and ``chol_samples``.
     priors : mapping, optional

@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import ast
 from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -239,6 +240,37 @@ EFFECTIVE_MASS_KIND: dict[str, str] = {"cosh": "cosh", "sinh": "sinh", "exp": "l
 _QUOTIENT_LIMIT = 700.0
 
 
+@dataclass(frozen=True)
+class ParameterLayout:
+    """Where each family of parameters sits in the internal and reported vectors.
+
+    Internal vector: ``E0, lgap1, ..`` (ordinary energies), ``Eosc0, lgaposc1, ..``
+    (oscillating energies), amplitudes, oscillating amplitudes, constants.
+    Reported vector: energies, amplitudes, oscillating energies, oscillating
+    amplitudes, constants (see :func:`physical_parameter_names`). Energy
+    families are ``E0`` then log-gaps internally and absolute energies when
+    reported; every other family is the same numbers in both vectors.
+
+    Attributes
+    ----------
+    states, oscillating : int
+        Number of ordinary and oscillating states.
+    internal, reported : dict
+        Family name (``energies``, ``oscillating_energies``, ``amplitudes``,
+        ``oscillating_amplitudes``, ``constants``) -> slice into the vector.
+    """
+
+    states: int
+    oscillating: int
+    internal: dict
+    reported: dict
+
+    #: families that are the same numbers internally and reported
+    LINEAR_FAMILIES = ("amplitudes", "oscillating_amplitudes", "constants")
+    #: energy families: (family, number of states attribute)
+    ENERGY_FAMILIES = ("energies", "oscillating_energies")
+
+
 def _energies(first: np.ndarray, lgaps: np.ndarray) -> np.ndarray:
     """Absolute energies ``E_n = E_{n-1} + exp(lgap_n)`` from ``E0`` and log-gaps."""
     if lgaps.shape[-1] == 0:
@@ -414,6 +446,18 @@ class CorrelatorModel:
     @property
     def n_observables(self) -> int:
         return len(self.observables)
+
+    @property
+    def layout(self) -> ParameterLayout:
+        """The parameter families' positions in the internal and reported vectors."""
+        return ParameterLayout(
+            states=self.states, oscillating=self.oscillating,
+            internal={"energies": self._sl_E, "oscillating_energies": self._sl_Eo,
+                      "amplitudes": self._sl_A, "oscillating_amplitudes": self._sl_Ao,
+                      "constants": self._sl_c},
+            reported={"energies": self._ph_E, "oscillating_energies": self._ph_Eo,
+                      "amplitudes": self._ph_A, "oscillating_amplitudes": self._ph_Ao,
+                      "constants": self._ph_c})
 
     @property
     def factorised(self) -> bool:
@@ -736,6 +780,15 @@ class FormulaModel(CorrelatorModel):
     def __repr__(self) -> str:
         return (f"FormulaModel({self.expression!r}, params={list(self.param_names)}, "
                 f"observables={list(self.observables)}, n_points={self.n_points})")
+
+    @property
+    def layout(self) -> ParameterLayout:
+        """No built-in families: internal and reported parameters are the formula's."""
+        empty = {name: slice(0, 0) for name in ("energies", "oscillating_energies",
+                                                 "amplitudes", "oscillating_amplitudes",
+                                                 "constants")}
+        return ParameterLayout(states=0, oscillating=0, internal=dict(empty),
+                               reported=dict(empty))
 
     def energies(self, theta: np.ndarray) -> np.ndarray:
         raise ValueError("a formula model has no built-in energies")

@@ -3,7 +3,7 @@
 A scan fits the same data over every combination of ``tmin``, ``tmax`` and
 number of states the user asks for, keeping the points with at least one
 degree of freedom. Each point is an independent
-:func:`~plateaufit.fit.correlated.fit_correlator` call (central fit plus
+:func:`~plateaufit.fit.correlator_fit.fit_correlator` call (central fit plus
 jackknife refits, started from its own automatic starting values), so the
 results do not depend on the order of evaluation, the executor or the number
 of workers: a serial run and a run on a process pool give the same numbers,
@@ -27,7 +27,7 @@ from typing import Any
 import numpy as np
 
 from plateaufit.errors import FitError, PlateaufitError, SpecError
-from plateaufit.fit.correlated import CorrelatorFit, fit_correlator
+from plateaufit.fit.correlator_fit import CorrelatorFit, fit_correlator
 from plateaufit.fit.models import physical_parameter_names
 
 RangeSpec = int | Sequence[int]
@@ -261,7 +261,7 @@ def scan(binned: np.ndarray | Mapping[str, np.ndarray], *, tmin: RangeSpec, tmax
     ----------
     binned : ndarray (n_bins, n_t) or dict NAME -> ndarray (n_bins, n_t)
         Binned, folded data, as for
-        :func:`~plateaufit.fit.correlated.fit_correlator`.
+        :func:`~plateaufit.fit.correlator_fit.fit_correlator`.
     tmin, tmax : int or [lo, hi] or [lo, hi, step]
         Ranges scanned (both ends included).
     states : int or sequence of int

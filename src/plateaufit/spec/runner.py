@@ -29,7 +29,8 @@ from plateaufit import __version__
 from plateaufit.atomic import write_text
 from plateaufit.errors import DataError, FitError, PlateaufitError, SpecError
 from plateaufit.fit.average import average_fits
-from plateaufit.fit.correlated import CorrelatorFit, Prior
+from plateaufit.fit.constraints import Prior
+from plateaufit.fit.correlator_fit import CorrelatorFit
 from plateaufit.fit.derived import DerivedExpression, DerivedInput, evaluate_derived
 from plateaufit.fit.models import EFFECTIVE_MASS_KIND
 from plateaufit.fit.scan import scan, scan_points
