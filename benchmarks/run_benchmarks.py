@@ -146,6 +146,7 @@ class StageClock:
 def stage_clock(capture: int = 0):
 
     import plateaufit.fit.correlator_fit as correlator_fit
+    import plateaufit.fit.range_stack as range_stack
     import plateaufit.fit.refits as refits
     import plateaufit.stats.covariance as covariance
     import plateaufit.stats.resample as resample
@@ -163,8 +164,8 @@ def stage_clock(capture: int = 0):
     clock.wrap(refits, "batched_refits", "refits: batched engine", on_batched)
     clock.wrap(correlator_fit, "jackknife_refits", "refits: total (incl. lmfit fallback)",
                on_refits)
-    clock.wrap(correlator_fit, "correlated_fit", "central fits (lmfit)")
-    clock.wrap(correlator_fit, "starting_values", "starting values")
+    clock.wrap(range_stack, "central_fits", "central fits (stacked engine)")
+    clock.wrap(range_stack, "starting_points", "starting points")
     clock.wrap(covariance, "covariance_of_mean", "covariance of the mean")
     clock.wrap(covariance, "per_sample_covariances", "per-sample covariances")
     clock.wrap(resample, "jackknife_samples", "jackknife samples")

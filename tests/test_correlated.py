@@ -123,9 +123,12 @@ def test_lmfit_refits_reproduce_the_central_fit_of_each_sample():
     central = correlated_fit(y, cov, model, starting_values(model, y, t))
     refit = jackknife_refits(samples, model, central.theta, cov=cov, engine="lmfit")
     assert refit.engine == "lmfit" and refit.converged.all() and refit.n_fallback == 0
+    sigma = np.sqrt(np.diag(central.param_covariance))
     for s in range(6):
         one = correlated_fit(samples[s], cov, model, central.theta)
-        np.testing.assert_allclose(refit.physical[s], one.values, rtol=1e-9)
+        # both minimisers stop within a small fraction of a standard error of
+        # the minimum (the central fit at CENTRAL_STAT_TOL, lmfit at its tol)
+        assert np.all(np.abs(refit.physical[s] - one.values) <= 1e-4 * sigma)
 
 
 def test_batched_engine_agrees_with_lmfit_loop():
@@ -139,7 +142,13 @@ def test_batched_engine_agrees_with_lmfit_loop():
     a = jackknife_refits(samples, model, central.theta, cov=cov, engine="lmfit")
     b = jackknife_refits(samples, model, central.theta, cov=cov, engine="batched")
     assert b.engine == "batched" and b.converged.all()
-    np.testing.assert_allclose(b.physical, a.physical, rtol=1e-8)
+    # the engine's statistical stopping rule: within STAT_TOL (1e-5) standard
+    # errors of the minimum, extrapolated; lmfit is much closer here
+    sigma = np.sqrt(np.diag(central.param_covariance))
+    assert np.all(np.abs(b.physical - a.physical) <= 2e-5 * sigma)
+    # without the statistical rule the engine iterates to the rounding floor
+    c = jackknife_refits(samples, model, central.theta, cov=cov, engine="batched", stol=None)
+    np.testing.assert_allclose(c.physical, a.physical, rtol=1e-8)
 
 
 def test_refits_with_a_broken_sample_covariance_fail_that_sample_only():
@@ -174,7 +183,8 @@ def test_per_sample_covariances_flag_nan_and_indefinite_samples_alike(engine):
     # every other sample is the correlated fit of its data with its own covariance
     for s in (0, 2, 4):
         one = correlated_fit(samples[s], cov_s[s], model, central.theta)
-        np.testing.assert_allclose(refit.physical[s], one.values, rtol=1e-8)
+        sigma = np.sqrt(np.diag(one.param_covariance))
+        assert np.all(np.abs(refit.physical[s] - one.values) <= 1e-4 * sigma)
 
 
 def test_fit_correlator_records_what_results_need():

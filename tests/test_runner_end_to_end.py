@@ -422,9 +422,14 @@ def test_a_simultaneous_fit_over_two_observables_and_two_state_counts(tmp_path):
     assert np.shape(fit["covariance"]["correlation"]) == (n_points, n_points)
     e0 = shown["params"]["E0"]
     assert abs(e0["value"] - TRUTH_E0["kaon"]) < 3 * e0["error"], e0
-    # E1 exists in the two-state fits only: averaged over them, weights renormalised there
+    # E1 exists in the two-state fits only: averaged over those that resolve it
+    # (state 1 not flagged unresolved), weights renormalised there
+    def resolves_e1(r):
+        return r["states"] == 2 and not any(f.startswith("state-unresolved:E1")
+                                            for f in r["flags"])
     w = np.array([r["weight"] for r in scan])
-    two = np.array([r["states"] == 2 for r in scan])
-    v = np.array([r["params"]["E1"]["value"] for r in scan if r["states"] == 2])
+    two = np.array([resolves_e1(r) for r in scan])
+    assert two.any() and (w[two] > 0).any()
+    v = np.array([r["params"]["E1"]["value"] for r in scan if resolves_e1(r)])
     assert shown["params"]["E1"]["value"] == pytest.approx(float(w[two] @ v / w[two].sum()),
                                                            rel=1e-10)

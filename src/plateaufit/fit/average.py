@@ -57,7 +57,7 @@ class ModelAverage:
     weights : numpy.ndarray
         ``(n_fits,)`` normalised AIC weights (0 for non-converged fits).
     n_excluded : int
-        Number of fits left out because they did not converge.
+        Number of fits given weight 0 (not converged, or flagged degenerate).
     samples : dict
         Name -> ``(S,)`` averaged jackknife samples ``sum_f w_f samples_f`` (the
         combination whose jackknife error is ``stat_error``), for propagating
@@ -108,8 +108,9 @@ def aic_weights(aic: np.ndarray | Sequence[float],
                            f"{aic.shape} and {converged.shape}")
     usable = converged & np.isfinite(aic)
     if not usable.any():
-        raise FitError("", f"none of the {aic.size} fits in the average converged; widen the "
-                           "fit ranges, add states or priors, or check the data")
+        raise FitError("", f"none of the {aic.size} fits in the average is usable (each did "
+                           "not converge or was flagged degenerate); widen the fit ranges, "
+                           "use fewer states, add priors, or check the data")
     shifted = np.where(usable, aic - aic[usable].min(), np.inf)
     raw = np.where(usable, np.exp(-0.5 * np.where(usable, shifted, 0.0)), 0.0)
     return raw / raw.sum()
@@ -138,7 +139,8 @@ def model_average(central: np.ndarray, samples: np.ndarray,
     aic : array_like, shape (n_fits,)
         AIC of each fit.
     converged : array_like of bool, shape (n_fits,)
-        Non-converged fits are excluded (weight 0).
+        Whether each fit may enter the average; the others get weight 0
+        (see :func:`usable_fits`).
     names : sequence of str, length p
         Parameter names.
 
@@ -161,7 +163,8 @@ def model_average(central: np.ndarray, samples: np.ndarray,
     ``sqrt((S-1)/S sum_s (x_s - xbar)^2)``. This keeps the correlation of the
     fits (which share the data); when the fits' samples move together it
     equals the ``sum_f w_f sigma_f^2`` term of Jay & Neil's variance, and it
-    is never larger than that term.
+    is never larger than that term (the jackknife error is a seminorm, so
+    ``|sum_f w_f x_f| <= sum_f w_f |x_f| <= sqrt(sum_f w_f |x_f|^2)``).
 
     References
     ----------
@@ -240,10 +243,25 @@ def average_fits(fits: Sequence[Any]) -> ModelAverage:
 
     Notes
     -----
-    A fit whose central ground-state energy ``E0`` is not positive describes
-    no decaying correlator (a runaway in which another state took over, or the
-    amplitude collapsed); like a fit that did not converge it gets weight 0
-    and is counted in ``n_excluded`` (common practice).
+    A fit gets weight 0 (and is counted in ``n_excluded``) when it did not
+    converge, when a diagnostic flag makes it degenerate (a collapsed ground
+    state, merged energies, a parameter on a bound, refits spread far wider
+    or narrower than its curvature allows; see
+    :mod:`plateaufit.fit.diagnostics`), or when its ground-state energy ``E0``
+    is not positive. The parameters of a state a fit does not resolve (all
+    its amplitudes compatible with zero) are left out of those parameters'
+    averages, as if the fit did not have them; the fit still counts for the
+    others.
+
+    The weights are the central fits' AIC weights, the same for every
+    jackknife sample: the averaged sample is ``sum_f w_f samples_f``. Weights
+    recomputed per sample would make the average a different (nonlinear)
+    function on every sample, and a point whose weight jumps between samples
+    would put the jump into the error; with fixed weights the jackknife error
+    of the average is at most ``sum_f w_f sigma_f`` (the triangle inequality),
+    hence at most the ``sqrt(sum_f w_f sigma_f^2)`` of Jay and Neil's
+    variance, and a point of weight ``w`` moves it by at most ``w`` times its
+    own error.
 
     References
     ----------
@@ -261,13 +279,21 @@ def average_fits(fits: Sequence[Any]) -> ModelAverage:
     central = np.full((len(fits), len(names)), np.nan)
     samples = np.full((len(fits), s_count, len(names)), np.nan)
     for i, fit in enumerate(fits):
+        left_out = set(getattr(fit, "undetermined", ()) or ())
         for j, name in enumerate(fit.model.physical_names):
+            if name in left_out:
+                continue
             k = names.index(name)
             central[i, k] = fit.central.physical[name]
             samples[i, :, k] = fit.samples[:, j]
     aic = np.array([fit.central.aic for fit in fits], dtype=float)
-    converged = np.array([fit.converged for fit in fits], dtype=bool)
-    return model_average(central, samples, aic, converged & physical_ground_state(fits), names)
+    return model_average(central, samples, aic, usable_fits(fits), names)
+
+
+def usable_fits(fits: Sequence[Any]) -> np.ndarray:
+    """Per fit: converged, not degenerate by its flags, and no ``E0 <= 0``."""
+    return np.array([bool(fit.converged) and not getattr(fit, "degenerate", False)
+                     for fit in fits], dtype=bool) & physical_ground_state(fits)
 
 
 def physical_ground_state(fits: Sequence[Any]) -> np.ndarray:

@@ -110,6 +110,9 @@ _COMPACT_EVERY = 8
 # The rounding floor of chi2 is estimated as this many units of round-off of
 # |r| * | |L^{-1}| |y| | (see the module notes).
 _ROUNDING_UNITS = 8.0
+#: Default statistical tolerance: steps below this many standard errors (in the
+#: metric of the fit's own curvature) end the iteration; see batched_refits.
+STAT_TOL = 1e-5
 
 
 class BatchedModel(Protocol):
@@ -301,10 +304,12 @@ class _Linearisation:
 
 def batched_refits(y_samples: np.ndarray, model: BatchedModel, start: np.ndarray, *,
                    chol: np.ndarray | None = None, chol_samples: np.ndarray | None = None,
+                   whiteners: np.ndarray | None = None,
                    priors: Mapping[str, Any] | None = None,
                    bounds: Mapping[str, Any] | None = None,
                    max_iter: int = 100, xtol: float = 1e-12, ftol: float = 1e-14,
-                   compact: bool = True) -> tuple[np.ndarray, np.ndarray]:
+                   stol: float | None = STAT_TOL, compact: bool = True,
+                   info: dict | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Refit a correlated chi-square fit on every jackknife sample at once.
 
     Levenberg-Marquardt on the whole stack of samples: each iteration makes one
@@ -334,8 +339,14 @@ def batched_refits(y_samples: np.ndarray, model: BatchedModel, start: np.ndarray
     chol_samples : ndarray, shape (S, n, n), optional
         One lower Cholesky factor per sample (see
         :func:`plateaufit.fit.whitening.batched_cholesky`); a
-        sample whose factor holds NaN is reported not converged. Give exactly
-        one of ``chol`` and ``chol_samples``.
+        sample whose factor holds NaN is reported not converged.
+    whiteners : ndarray, shape (S, n_w, n), optional
+        One whitening matrix per sample, given directly instead of a factor:
+        the whitened residual of sample ``s`` is ``whiteners[s] @ (f - y_s)``.
+        It may be rectangular: rows of zeros pad, columns of zeros leave
+        points out, so samples fitting different subsets of the model's
+        points (the central fits of several fit ranges) share one call.
+        Give exactly one of ``chol``, ``chol_samples`` and ``whiteners``.
     priors : mapping, optional
         Reported parameter name -> ``Prior`` (``.mean``, ``.width``) or
         ``(mean, width)``; adds ``((P_k - mean) / width)^2`` to chi2.
@@ -398,10 +409,17 @@ def batched_refits(y_samples: np.ndarray, model: BatchedModel, start: np.ndarray
                          f"got {start.shape}")
     theta = np.array(np.broadcast_to(start, (n_samples, p)), dtype=float)
     converged = np.zeros(n_samples, dtype=bool)
-    if (chol is None) == (chol_samples is None):
-        raise ValueError("give exactly one of chol (frozen covariance) and "
-                         "chol_samples (one covariance per sample)")
-    if chol is not None:
+    if sum(a is not None for a in (chol, chol_samples, whiteners)) != 1:
+        raise ValueError("give exactly one of chol (frozen covariance), chol_samples (one "
+                         "covariance per sample) and whiteners (one whitening matrix per "
+                         "sample)")
+    if whiteners is not None:
+        winv = np.asarray(whiteners, dtype=float)
+        if winv.ndim != 3 or winv.shape[0] != n_samples or winv.shape[2] != n_points:
+            raise ValueError(f"whiteners must have shape ({n_samples}, n_w, {n_points}), "
+                             f"got {winv.shape}")
+        usable = np.isfinite(winv).all(axis=(1, 2))
+    elif chol is not None:
         chol = np.asarray(chol, dtype=float)
         if chol.shape != (n_points, n_points):
             raise ValueError(f"chol must have shape ({n_points}, {n_points}), "
@@ -424,14 +442,18 @@ def batched_refits(y_samples: np.ndarray, model: BatchedModel, start: np.ndarray
     rows = np.flatnonzero(usable)      # output row of each working sample
     if max_iter < 1 or rows.size == 0:
         return theta, converged
+    if info is None:
+        info = {}
+    info["iterations"] = np.zeros(n_samples, dtype=np.int64)
+    info["flat"] = np.zeros(n_samples, dtype=bool)
 
     with np.errstate(all="ignore"):
         return _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
-                        max_iter, xtol, ftol, compact)
+                        max_iter, xtol, ftol, stol, compact, info)
 
 
 def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
-             max_iter, xtol, ftol, compact):
+             max_iter, xtol, ftol, stol, compact, info):
     """The Levenberg-Marquardt loop of :func:`batched_refits` (fills theta, converged).
 
     Works batch-last (see :class:`_Stack`): ``th`` is (p, m).
@@ -497,6 +519,10 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
     ok = np.zeros(m, dtype=bool)
     done = ~(np.isfinite(chi2) & lin.finite)
     damped = False                    # any lam > 0 in the working set
+    stol2 = -1.0 if stol is None else float(stol) ** 2
+    n_quiet = np.zeros(m, dtype=np.int64)   # consecutive accepted steps below stol
+    flat = np.zeros(m, dtype=bool)
+    iters = np.zeros(m, dtype=np.int64)
 
     for _ in range(max_iter):
         if done.all():
@@ -547,6 +573,30 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
             accept = accept & ~done
             gn_accept = gn_accept & ~done
         conv = gn_accept & small
+        if stol2 > 0:
+            # Statistical stopping rule: the step measured in units of the
+            # fit's own parameter errors, |delta|_A = sqrt(delta^T A delta)
+            # (A = J^T J, the inverse curvature covariance), bounds the change
+            # of every parameter in units of its error. An undamped step whose
+            # length, extrapolated with the observed rate (capped at q = 0.9),
+            # is below stol is converged; so is any accepted step after which
+            # both the step and the chi2 change have stayed below stol (and
+            # stol^2) twice in a row: a flat valley, where chi2 no longer
+            # distinguishes the points.
+            if box is None:
+                mah2 = np.einsum("pm,pm->m", lin.rhs, z) - (
+                    (lam + _REGULARISATION) if damped else _REGULARISATION) * zz
+            else:
+                mah2 = np.einsum("pm,pqm,qm->m", z, lin.scaled, z)
+            qc = np.minimum(q, 0.9)
+            ext2 = np.where(last_ratio2 == 1.0, 1.0, (qc / (1.0 - qc)) ** 2)
+            stat = gn_accept & (mah2 * np.maximum(ext2, 1.0) <= stol2)
+            quiet = accept & (mah2 <= stol2) & (diff <= stol2)
+            n_quiet = np.where(quiet, n_quiet + 1, np.where(accept, 0, n_quiet))
+            is_flat = (n_quiet >= 2) & ~stat & ~conv
+            conv = conv | stat | is_flat
+            flat |= is_flat
+        iters += ~done
         last_ratio2 = np.where(gn_accept, np.where(ratio2 > 0, ratio2, 1.0), last_ratio2)
         last2 = np.where(gn_accept, zz, last2)
 
@@ -581,6 +631,8 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
             fin = np.flatnonzero(done)
             theta[rows[fin]] = th[:, fin].T
             converged[rows[fin]] = ok[fin]
+            info["iterations"][rows[fin]] = iters[fin]
+            info["flat"][rows[fin]] = flat[fin]
             keep = np.flatnonzero(~done)
             rows = rows[keep]
             if keep.size == 0:
@@ -593,6 +645,7 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
             lam, nu, zscale = lam[keep], nu[keep], zscale[keep]
             floor, gain_floor, near_floor = floor[keep], gain_floor[keep], near_floor[keep]
             last2, last_ratio2, ok, done = last2[keep], last_ratio2[keep], ok[keep], done[keep]
+            n_quiet, flat, iters = n_quiet[keep], flat[keep], iters[keep]
             n_done = 0
 
         # Fresh linearisation where a step was accepted and work goes on.
@@ -617,6 +670,8 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
     if rows.size:
         theta[rows] = th.T
         converged[rows] = ok & done
+        info["iterations"][rows] = iters
+        info["flat"][rows] = flat & ok & done
     converged &= np.isfinite(theta).all(axis=1)
     if box is not None:
         # On a face of the box the minimum has active constraints, which this

@@ -1,5 +1,18 @@
 """The fit of one range: central fit plus a refit on every jackknife sample.
 
+The steps, each a function usable on its own (the scan runs the central fits
+of many ranges before any refit):
+
+1. :func:`prepare_range` -- the model, the data vector and its covariance;
+2. :func:`central_of_range` -- the central fit from several starts, among them
+   the fit with one state fewer on the same range plus a state on top;
+3. :func:`refit_range` -- a refit on every jackknife sample, the jackknife
+   errors and the diagnostic flags (:mod:`plateaufit.fit.diagnostics`).
+
+Numerical warnings raised by numpy, scipy or lmfit inside a fit are caught
+there, counted on the result (``n_numerical_warnings``) and never reach the
+terminal.
+
 References
 ----------
 G. P. Lepage et al., "Constrained curve fitting", Nucl. Phys. B (Proc.
@@ -15,14 +28,18 @@ from typing import Any
 import numpy as np
 
 from plateaufit.errors import FitError
-from plateaufit.fit.central import DEFAULT_TOL, CentralFit, correlated_fit
-from plateaufit.fit.guesses import starting_values
-from plateaufit.fit.models import CorrelatorModel, make_model
+from plateaufit.fit.central import DEFAULT_TOL, CentralFit
+from plateaufit.fit.diagnostics import Flag, diagnose, is_degenerate, undetermined_parameters
+from plateaufit.fit.models import CorrelatorModel
+from plateaufit.fit.numerics import CaughtWarnings, merge_messages
+from plateaufit.fit.range_stack import central_fits
+from plateaufit.fit.ranges import RangeProblem, prepare_range
 from plateaufit.fit.refits import jackknife_refits
 from plateaufit.stats import covariance as covmod
 from plateaufit.stats.resample import jackknife_covariance, jackknife_error, jackknife_samples
 
-__all__ = ["CorrelatorFit", "fit_correlator"]
+__all__ = ["CorrelatorFit", "fit_correlator", "central_of_range", "refit_range", "with_warnings",
+           "RangeProblem", "prepare_range"]
 
 
 @dataclass
@@ -58,6 +75,12 @@ class CorrelatorFit:
     n_bins : int
     per_sample : bool
         Whether each refit used its own covariance.
+    flags : tuple of Flag
+        Diagnostics (:mod:`plateaufit.fit.diagnostics`); empty when clean.
+    n_numerical_warnings : int
+        Warnings numpy, scipy or lmfit raised during the fit (caught).
+    numerical_warnings : tuple of str
+        The distinct messages among them (at most five).
     """
 
     model: CorrelatorModel
@@ -77,10 +100,28 @@ class CorrelatorFit:
     observables: tuple[str, ...] = ()
     n_bins: int = 0
     per_sample: bool = False
+    flags: tuple[Flag, ...] = ()
+    n_numerical_warnings: int = 0
+    numerical_warnings: tuple[str, ...] = ()
 
     @property
     def names(self) -> tuple[str, ...]:
         return tuple(self.model.physical_names)
+
+    @property
+    def degenerate(self) -> bool:
+        """A flag makes this fit unusable in an average (weight 0)."""
+        return is_degenerate(self.flags)
+
+    @property
+    def undetermined(self) -> set[str]:
+        """Parameters the flags leave out of their averages (unresolved states)."""
+        return undetermined_parameters(self.flags)
+
+    @property
+    def flag_codes(self) -> list[str]:
+        """The flags as the short strings results store."""
+        return [str(f) for f in self.flags]
 
     @property
     def values(self) -> dict[str, float]:
@@ -93,23 +134,84 @@ class CorrelatorFit:
     aic = property(lambda self: self.central.aic)
 
 
-def _as_observables(binned) -> dict[str, np.ndarray]:
-    if isinstance(binned, Mapping):
-        data = {str(k): np.asarray(v, dtype=float) for k, v in binned.items()}
+def central_of_range(problem: RangeProblem, lower: Mapping[str, float] | None = None,
+                     *, lower_states: bool = True) -> CentralFit:
+    """The central fit of one range, minimised from several starts.
+
+    Parameters
+    ----------
+    problem : RangeProblem
+    lower : mapping, optional
+        Reported parameters of the central fit with one state fewer on the
+        same range. When not given (and ``lower_states``), that fit is made
+        here first (recursively), so a fit of ``n`` states always also starts
+        from the best fit of ``n - 1`` states plus one.
+    lower_states : bool, optional
+        Whether to make the fit with one state fewer when ``lower`` is None.
+
+    Returns
+    -------
+    CentralFit
+    """
+    model = problem.model
+    if lower is None and lower_states and model.form != "formula" and problem.states >= 2:
+        below = central_of_range(problem.with_states(problem.states - 1))
+        if below.converged:
+            lower = below.physical
+    return central_fits([problem], [lower])[0]
+
+
+def refit_range(problem: RangeProblem, central: CentralFit) -> CorrelatorFit:
+    """Refits on every jackknife sample, errors and diagnostics of one range.
+
+    When the central fit is already degenerate by its own curvature (it
+    failed, a parameter is on a bound, or the ground state collapsed), the
+    refits run in the batched engine only: their errors serve the
+    diagnostics, and refitting stragglers one by one would cost much for a
+    fit that gets weight 0 anyway.
+    """
+    model = problem.model
+    x = problem.x
+    y_samples = jackknife_samples(x)
+    early = diagnose(names=model.physical_names, states=model.states,
+                     values=central.physical, errors=central.errors,
+                     curvature_errors=central.errors, converged=central.converged,
+                     at_bound=central.at_bound, oscillating=model.oscillating)
+    kwargs = dict(priors=problem.priors, bounds=problem.bounds, engine=problem.engine,
+                  tol=problem.tol, fallback=not is_degenerate(early))
+    if problem.per_sample:
+        cov_samples = covmod.per_sample_covariances(x, **problem.covariance_options)
+        refits = jackknife_refits(y_samples, model, central.theta, cov_samples=cov_samples,
+                                  **kwargs)
     else:
-        data = {"corr": np.asarray(binned, dtype=float)}
-    if not data:
-        raise FitError("observables", "a fit needs at least one observable")
-    n_bins = None
-    for name, arr in data.items():
-        if arr.ndim != 2:
-            raise FitError(f"observables.{name}", f"binned data must have shape "
-                           f"(n_bins, n_t), got {arr.shape}")
-        if n_bins is not None and arr.shape[0] != n_bins:
-            raise FitError(f"observables.{name}", f"has {arr.shape[0]} bins but the other "
-                           f"observables of the fit have {n_bins}; bin them alike")
-        n_bins = arr.shape[0]
-    return data
+        refits = jackknife_refits(y_samples, model, central.theta,
+                                  cov=problem.covariance.matrix, **kwargs)
+    samples = refits.physical
+    good = refits.converged
+    if good.sum() >= 2:
+        err = np.asarray(jackknife_error(samples[good]), dtype=float)
+        pcov = np.asarray(jackknife_covariance(samples[good]), dtype=float)
+    else:
+        err = np.full(model.n_params, np.nan)
+        pcov = np.full((model.n_params, model.n_params), np.nan)
+    n_failed = int(np.count_nonzero(~good))
+    names = tuple(model.physical_names)
+    errors = dict(zip(names, err.tolist()))
+    flags = diagnose(names=names, states=model.states, values=central.physical,
+                     errors=errors, curvature_errors=central.errors, samples=samples,
+                     converged=central.converged, central_message=central.message,
+                     at_bound=central.at_bound, n_refit_failed=n_failed,
+                     n_samples=samples.shape[0], priors=problem.priors,
+                     effective_masses=problem.effective_masses,
+                     oscillating=model.oscillating)
+    return CorrelatorFit(
+        model=model, tmin=problem.tmin, tmax=problem.tmax, states=problem.states,
+        form=problem.form, central=central, samples=samples, errors=errors,
+        covariance=problem.covariance,
+        converged=bool(central.converged and n_failed == 0),
+        n_refit_failed=n_failed, param_covariance=pcov, n_fallback=refits.n_fallback,
+        engine=refits.engine, observables=problem.observables, n_bins=problem.n_bins,
+        per_sample=problem.per_sample, flags=flags)
 
 
 def fit_correlator(binned, *, form: str, states: int, tmin: int, tmax: int,
@@ -161,6 +263,9 @@ def fit_correlator(binned, *, form: str, states: int, tmin: int, tmax: int,
     CorrelatorFit
         ``converged`` is False (never an exception) when the central fit or
         any refit fails; values and errors are then still filled where known.
+        ``flags`` says what a careful analyst would check (a collapsed ground
+        state, merged or unresolved states, a bound, wandering refits, a
+        dominating prior); see :mod:`plateaufit.fit.diagnostics`.
 
     Raises
     ------
@@ -175,64 +280,20 @@ def fit_correlator(binned, *, form: str, states: int, tmin: int, tmax: int,
     Suppl.) 106 (2002) 12; W. I. Jay, E. T. Neil, Phys. Rev. D 103 (2021)
     114502.
     """
-    data = _as_observables(binned)
-    names = list(data)
-    tmin, tmax = int(tmin), int(tmax)
-    for name, arr in data.items():
-        n_t = arr.shape[1]
-        if tmin < 0 or tmin >= n_t:
-            raise FitError("tmin", f"tmin={tmin} is outside the data of '{name}' "
-                           f"(timeslices 0..{n_t - 1})")
-        if tmax < tmin or tmax >= n_t:
-            raise FitError("tmax", f"tmax={tmax} must lie in {tmin}..{n_t - 1} for '{name}' "
-                           f"(tmin={tmin}, {n_t} timeslices)")
-    t = np.arange(tmin, tmax + 1)
-    model = make_model(form, states, names, {n: t for n in names}, time_extent,
-                       oscillating=oscillating, constant=constant, factorised=factorised,
-                       formula=formula)
-    if model.n_points < model.n_params and not priors:
-        raise FitError("tmax", f"the range {tmin}..{tmax} gives {model.n_points} points for "
-                       f"{model.n_params} parameters; widen the range, use fewer states or "
-                       "add priors")
-    x = np.concatenate([data[n][:, tmin:tmax + 1] for n in names], axis=1)
-    n_bins = x.shape[0]
-    if n_bins < 2:
-        raise FitError("", f"a jackknife needs at least 2 bins, got {n_bins}")
-    if not np.all(np.isfinite(x)):
-        raise FitError("", "the binned data in the fit range hold non-finite values")
-    if n_total_points is None:
-        n_total_points = int(sum(arr.shape[1] for arr in data.values()))
-    cov_kw: dict[str, Any] = {"shrinkage": shrinkage, "target": target}
-    if eigenvalue_floor is not None:
-        cov_kw["eigenvalue_floor"] = eigenvalue_floor
-    cov_result = covmod.covariance_of_mean(x, **cov_kw)
-    y = x.mean(axis=0)
-    slices = model.point_slices()
-    p0 = starting_values(model, {n: y[slices[n]] for n in names}, {n: t for n in names},
-                         overrides=start)
-    central = correlated_fit(y, cov_result.matrix, model, p0, priors=priors, bounds=bounds,
-                             n_bins=n_bins, n_total_points=n_total_points, tol=tol)
-    y_samples = jackknife_samples(x)
-    if per_sample:
-        cov_samples = covmod.per_sample_covariances(x, **cov_kw)
-        refits = jackknife_refits(y_samples, model, central.theta, cov_samples=cov_samples,
-                                  priors=priors, bounds=bounds, engine=engine, tol=tol)
-    else:
-        refits = jackknife_refits(y_samples, model, central.theta, cov=cov_result.matrix,
-                                  priors=priors, bounds=bounds, engine=engine, tol=tol)
-    samples = refits.physical
-    good = refits.converged
-    if good.sum() >= 2:
-        err = np.asarray(jackknife_error(samples[good]), dtype=float)
-        pcov = np.asarray(jackknife_covariance(samples[good]), dtype=float)
-    else:
-        err = np.full(model.n_params, np.nan)
-        pcov = np.full((model.n_params, model.n_params), np.nan)
-    n_failed = int(np.count_nonzero(~good))
-    return CorrelatorFit(
-        model=model, tmin=tmin, tmax=tmax, states=int(states), form=form, central=central,
-        samples=samples, errors=dict(zip(model.physical_names, err.tolist())),
-        covariance=cov_result, converged=bool(central.converged and n_failed == 0),
-        n_refit_failed=n_failed, param_covariance=pcov, n_fallback=refits.n_fallback,
-        engine=refits.engine, observables=tuple(names), n_bins=n_bins,
-        per_sample=bool(per_sample))
+    with CaughtWarnings() as caught:
+        problem = prepare_range(binned, form=form, states=states, tmin=tmin, tmax=tmax,
+                                time_extent=time_extent, priors=priors, bounds=bounds,
+                                shrinkage=shrinkage, target=target, per_sample=per_sample,
+                                oscillating=oscillating, constant=constant,
+                                factorised=factorised, formula=formula, start=start,
+                                engine=engine, n_total_points=n_total_points,
+                                eigenvalue_floor=eigenvalue_floor, tol=tol)
+        fit = refit_range(problem, central_of_range(problem))
+    return with_warnings(fit, caught)
+
+
+def with_warnings(fit: CorrelatorFit, caught: CaughtWarnings) -> CorrelatorFit:
+    """Add the warnings caught around a fit to those its central fit caught."""
+    fit.n_numerical_warnings = caught.count + fit.central.n_numerical_warnings
+    fit.numerical_warnings = merge_messages(fit.central.numerical_warnings, caught.messages)
+    return fit

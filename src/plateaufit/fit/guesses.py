@@ -25,7 +25,7 @@ from plateaufit.errors import FitError
 from plateaufit.fit.models import CorrelatorModel, FormulaModel
 from plateaufit.stats.effmass import effective_mass
 
-__all__ = ["starting_values", "pair_energies"]
+__all__ = ["starting_values", "starting_points", "pair_energies"]
 
 #: Gap between successive states, as a fraction of E0 (common practice), and
 #: its floor in lattice units.
@@ -349,3 +349,96 @@ def starting_values(model: CorrelatorModel, y_by_obs, t_by_obs,
         raise FitError("start", f"could not find finite starting values, got {phys.tolist()}; "
                        "give them under start:")
     return theta
+
+
+#: Gaps tried for a state added on top of a fit with one state fewer, as
+#: fractions of the lower fit's highest energy (floored at GAP_FLOOR / 2).
+ADDED_STATE_GAPS = (0.25, 0.75, 2.0)
+
+
+def starting_points(model: CorrelatorModel, y_by_obs, t_by_obs,
+                    overrides: Mapping[str, float] | None = None,
+                    lower: Mapping[str, float] | None = None) -> np.ndarray:
+    """Several starting points of a fit, to be minimised side by side.
+
+    A multi-state fit has more than one local minimum: the ground state can
+    park at a tiny amplitude while an excited state takes its place, or two
+    states can merge. Starting from several points and keeping the lowest
+    chi2 finds the physical minimum where one start alone may not.
+
+    Parameters
+    ----------
+    model : CorrelatorModel
+    y_by_obs, t_by_obs, overrides
+        As for :func:`starting_values`; ``overrides`` apply to every point.
+    lower : mapping, optional
+        Reported parameters of the fit with one state fewer on the same range
+        (its central fit). Adds points made of that fit plus one state on top,
+        at several gaps (:data:`ADDED_STATE_GAPS`), with the amplitude that
+        makes up the lower fit's residual at the first timeslice.
+
+    Returns
+    -------
+    ndarray, (k, n_params)
+        Finite internal parameters, the effective-mass start
+        (:func:`starting_values`) first. A formula model, or a one-state model
+        without ``lower``, has the one start.
+
+    References
+    ----------
+    G. P. Lepage et al., "Constrained curve fitting", Nucl. Phys. B (Proc.
+    Suppl.) 106 (2002) 12 -- adding states one at a time, each fit starting
+    from the one before (common practice).
+    """
+    first = starting_values(model, y_by_obs, t_by_obs, overrides=overrides)
+    if isinstance(model, FormulaModel) or model.states < 2:
+        return first[None, :]
+    points = [first]
+    base = model.to_physical(first)
+    names = list(model.physical_names)
+    index = {n: i for i, n in enumerate(names)}
+    s = model.states
+    top = s - 1
+    # variations of the effective-mass start: the top state's gap halved and doubled
+    for factor in (0.5, 2.0):
+        phys = base.copy()
+        gap = phys[top] - phys[top - 1]
+        phys[top] = phys[top - 1] + factor * gap
+        points.append(phys)
+    if lower:
+        y_map = _as_mapping(model, y_by_obs, "y_by_obs")
+        t_map = _as_mapping(model, t_by_obs, "t_by_obs")
+        e_low = np.array([float(lower[f"E{n}"]) for n in range(top)])
+        for frac in ADDED_STATE_GAPS:
+            phys = base.copy()
+            for name, value in lower.items():
+                if name in index and np.isfinite(value):
+                    phys[index[name]] = float(value)
+            gap = max(frac * e_low[-1], 0.5 * GAP_FLOOR) if e_low[-1] > 0 else GAP_FLOOR
+            phys[top] = e_low[-1] + gap
+            if model.operators is None:
+                for obs in model.observables:
+                    y, t = y_map[obs], t_map[obs]
+                    j = int(np.argmin(t))
+                    fitted = sum(phys[index[f"A{n}.{obs}"]]
+                                 * _basis(model.form, phys[n], t[j], model.time_extent)
+                                 for n in range(top))
+                    with np.errstate(all="ignore"):
+                        amp = (y[j] - fitted) / _basis(model.form, phys[top], t[j],
+                                                       model.time_extent)
+                    scale = abs(phys[index[f"A0.{obs}"]])
+                    phys[index[f"A{top}.{obs}"]] = _clamp_amplitude(float(amp), scale,
+                                                                    0.1 * scale or 0.1)
+            points.append(phys)
+    out = []
+    for phys in points:
+        if overrides:
+            for name, value in overrides.items():
+                phys[index[name]] = float(value)
+        try:
+            theta = model.from_physical(phys)
+        except ValueError:
+            continue
+        if np.all(np.isfinite(theta)):
+            out.append(theta)
+    return np.array(out)

@@ -27,8 +27,13 @@ from typing import Any
 import numpy as np
 
 from plateaufit.errors import FitError, PlateaufitError, SpecError
-from plateaufit.fit.correlator_fit import CorrelatorFit, fit_correlator
-from plateaufit.fit.models import physical_parameter_names
+from plateaufit.fit.central import CentralFit
+from plateaufit.fit.correlator_fit import CorrelatorFit, refit_range, with_warnings
+from plateaufit.fit.models import EFFECTIVE_MASS_KIND, physical_parameter_names
+from plateaufit.fit.numerics import CaughtWarnings, merge_messages
+from plateaufit.fit.range_stack import central_fits
+from plateaufit.fit.ranges import RangeProblem, prepare_range
+from plateaufit.stats.effmass import effective_mass_jackknife
 
 RangeSpec = int | Sequence[int]
 
@@ -231,17 +236,78 @@ def _per_states_kwargs(fit_kwargs: dict[str, Any], names_of: Callable[[int], lis
     return out
 
 
-def _fit_point(shared: tuple[Any, dict[int, dict[str, Any]]],
-               point: tuple[int, int, int]) -> CorrelatorFit:
-    """Fit one scan point (module level, so it runs in worker processes)."""
-    binned, kwargs_by_states = shared
+def _prepare_point(data: Any, kwargs_by_states: dict[int, dict[str, Any]],
+                   effective: dict[str, Any] | None, point: tuple[int, int, int]
+                   ) -> RangeProblem:
     tmin, tmax, states = point
     try:
-        return fit_correlator(binned, tmin=tmin, tmax=tmax, states=states,
-                              **kwargs_by_states[states])
+        return prepare_range(data, tmin=tmin, tmax=tmax, states=states,
+                             effective_masses=effective, **kwargs_by_states[states])
     except PlateaufitError as err:
         raise type(err)(err.where, f"fit range tmin={tmin}, tmax={tmax}, states={states}: "
                                    f"{err.message}") from None
+
+
+def _refit_point(shared: tuple[Any, dict[int, dict[str, Any]], dict[str, Any] | None],
+                 item: tuple[tuple[int, int, int], CentralFit]) -> CorrelatorFit:
+    """Refit one scan point on every jackknife sample (module level, so it runs in
+    worker processes)."""
+    data, kwargs_by_states, effective = shared
+    point, central = item
+    with CaughtWarnings() as caught:
+        problem = _prepare_point(data, kwargs_by_states, effective, point)
+        fit = refit_range(problem, central)
+    return with_warnings(fit, caught)
+
+
+def _effective_masses(data: Any, fit_kwargs: dict[str, Any]) -> dict[str, Any] | None:
+    """Jackknife effective masses of every observable on all timeslices, once per scan."""
+    kind = EFFECTIVE_MASS_KIND.get(fit_kwargs.get("form"))
+    if kind is None or fit_kwargs.get("oscillating"):
+        return None
+    series = data if isinstance(data, Mapping) else {"corr": data}
+    with np.errstate(all="ignore"):
+        return {name: effective_mass_jackknife(values, kind=kind,
+                                               time_extent=fit_kwargs.get("time_extent"))
+                for name, values in series.items()}
+
+
+def _central_phase(problems: dict[tuple[int, int, int], RangeProblem],
+                   state_list: list[int]) -> dict[tuple[int, int, int], CentralFit]:
+    """Central fits of every point: one stacked engine call per number of states.
+
+    States go upward so that a fit of ``n`` states starts, among others, from
+    the fit of ``n - 1`` states on the same range (made here when the scan does
+    not include it).
+    """
+    centrals: dict[tuple[int, int, int], CentralFit] = {}
+    formula = any(p.form == "formula" for p in problems.values())
+    for states in state_list:
+        keys = [k for k in problems if k[2] == states]
+        lowers: list[Any] = [None] * len(keys)
+        if states >= 2 and not formula:
+            missing = [k for k in keys if (k[0], k[1], states - 1) not in centrals]
+            if missing:
+                extra = _lower_centrals([problems[k].with_states(states - 1) for k in missing])
+                for k, fit in zip(missing, extra):
+                    centrals.setdefault((k[0], k[1], states - 1), fit)
+            lowers = []
+            for k in keys:
+                below = centrals[(k[0], k[1], states - 1)]
+                lowers.append(below.physical if below.converged else None)
+        for k, fit in zip(keys, central_fits([problems[k] for k in keys], lowers)):
+            centrals[k] = fit
+    return centrals
+
+
+def _lower_centrals(problems: list[RangeProblem]) -> list[CentralFit]:
+    """Central fits with one state fewer, for points whose scan lacks them."""
+    states = problems[0].states
+    lowers: list[Any] = [None] * len(problems)
+    if states >= 2:
+        below = _lower_centrals([p.with_states(states - 1) for p in problems])
+        lowers = [b.physical if b.converged else None for b in below]
+    return central_fits(problems, lowers)
 
 
 def _n_timeslices(binned: np.ndarray | Mapping[str, np.ndarray]) -> tuple[list[str] | None, int]:
@@ -318,10 +384,23 @@ def scan(binned: np.ndarray | Mapping[str, np.ndarray], *, tmin: RangeSpec, tmax
         def names_of(n_states: int) -> list[str]:
             return physical_parameter_names(observables, n_states, **options)
     state_list = sorted({p.states for p in points})
-    items = [(p.tmin, p.tmax, p.states) for p in points]
-    shared = (data, _per_states_kwargs(dict(fit_kwargs), names_of, state_list))
+    keys = [(p.tmin, p.tmax, p.states) for p in points]
+    kwargs_by_states = _per_states_kwargs(dict(fit_kwargs), names_of, state_list)
+    effective = _effective_masses(data, fit_kwargs)
+    # 1. every range set up, and its central fit, here (one stacked engine call
+    #    per number of states: deterministic, whatever the executor)
+    with CaughtWarnings() as caught:
+        problems = {k: _prepare_point(data, kwargs_by_states, effective, k) for k in keys}
+        centrals = _central_phase(problems, state_list)
+    if caught.count:      # set-up warnings (rare): counted with the first point
+        first = centrals[keys[0]]
+        first.n_numerical_warnings += caught.count
+        first.numerical_warnings = merge_messages(first.numerical_warnings, caught.messages)
+    # 2. the jackknife refits of every point, on the executor
+    shared = (data, kwargs_by_states, effective)
+    items = [(k, centrals[k]) for k in keys]
     if executor is None:
         from plateaufit.parallel import SerialExecutor
 
         executor = SerialExecutor()
-    return executor.map(_fit_point, items, shared=shared, progress=progress, desc=label)
+    return executor.map(_refit_point, items, shared=shared, progress=progress, desc=label)

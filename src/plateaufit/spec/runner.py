@@ -144,6 +144,7 @@ def _scan_row(fit: CorrelatorFit, model: str, weight: float) -> dict[str, Any]:
         "weight": float(weight),
         "converged": bool(fit.converged),
         "n_refit_failed": int(fit.n_refit_failed),
+        "flags": fit.flag_codes,
         "params": {
             name: {"value": float(central.physical[name]), "error": float(fit.errors[name])}
             for name in fit.model.physical_names
@@ -168,6 +169,25 @@ def _average_fits(fits: list[CorrelatorFit]) -> tuple[dict[str, dict[str, float]
         params[name] = _param_entry(avg.value[name], avg.stat_error[name], avg.sys_error[name])
         inputs[name] = DerivedInput(avg.value[name], avg.samples[name], avg.sys_error[name])
     return params, avg.weights, avg.n_excluded, inputs
+
+
+def _excluded_summary(name: str, fits: list[CorrelatorFit]) -> str:
+    """One line: how many scan points got weight 0, and why (flags counted)."""
+    reasons: dict[str, int] = {}
+    n = 0
+    for f in fits:
+        codes = [flag.code for flag in f.flags if flag.degenerate]
+        if not f.converged and "central-failed" not in codes and "refits-failed" not in codes:
+            codes.append("not converged")
+        if f.central.physical.get("E0", 1.0) <= 0 and "ground-collapsed" not in codes:
+            codes.append("ground-collapsed")
+        if codes:
+            n += 1
+            for code in codes:
+                reasons[code] = reasons.get(code, 0) + 1
+    shown = ", ".join(f"{code} {count}" for code, count in sorted(reasons.items()))
+    return (f"fit {name}: {n} of {len(fits)} scan points were given weight 0 ({shown}); "
+            "run.log lists each with its reason")
 
 
 def _covariance_summary(fit: CorrelatorFit) -> dict[str, Any]:
@@ -273,8 +293,14 @@ def _run_fit(index: int, fit_spec: Any, spec: Any, binned: dict[str, np.ndarray]
             raise FitError(where, "no fit of the scan converged; narrow the ranges, add priors "
                                   "on the excited states, or give start values")
         if n_excluded:
-            fit_warnings.append(f"fit {fit_spec.name}: {n_excluded} of {len(fits)} scan points did "
-                                "not converge or ended with E0 <= 0, and were given weight 0")
+            # a few bad points left out is the average working as it should
+            # (run.log and the report's scan table list them); a warning when
+            # they are the majority
+            summary = _excluded_summary(fit_spec.name, fits)
+            if 2 * n_excluded >= len(fits):
+                fit_warnings.append(summary)
+            else:
+                log.info(summary)
         shown = fits[int(np.argmax(weights))]
         chosen = {"method": "average", "tmin": shown.tmin, "tmax": shown.tmax,
                   "states": shown.states, "params": params, "n_fits": len(fits),
@@ -289,10 +315,20 @@ def _run_fit(index: int, fit_spec: Any, spec: Any, binned: dict[str, np.ndarray]
         if shown.central.p_value < _LOW_P_VALUE:
             fit_warnings.append(f"fit {fit_spec.name}: the highest-weight fit has p-value "
                                 f"{shown.central.p_value:.3g}")
-    n_refit_failed = sum(f.n_refit_failed for f in fits)
-    if n_refit_failed:
-        fit_warnings.append(f"fit {fit_spec.name}: {n_refit_failed} jackknife refit(s) did not "
-                            "converge even with the fallback fitter")
+    if len(fits) == 1 or choose != "average":
+        if chosen_fit.flags:
+            fit_warnings.append(f"fit {fit_spec.name}: the chosen fit is flagged: "
+                                + "; ".join(f.message for f in chosen_fit.flags))
+    for f in fits:
+        for flag in f.flags:
+            log.info(f"fit {fit_spec.name}: tmin={f.tmin} tmax={f.tmax} states={f.states}: "
+                     f"{flag.code}: {flag.message}")
+    n_numerical = sum(f.n_numerical_warnings for f in fits)
+    if n_numerical:
+        log.info(f"fit {fit_spec.name}: {n_numerical} numerical warning(s) from numpy/scipy/"
+                 f"lmfit were caught inside the fits (expected while a minimiser explores); "
+                 "first messages: " + " | ".join(
+                     sorted({m for f in fits for m in f.numerical_warnings})[:5]))
     if shown.covariance.shrinkage > _STRONG_SHRINKAGE:
         fit_warnings.append(f"fit {fit_spec.name}: strong covariance shrinkage "
                             f"({shown.covariance.shrinkage:.2f}); more bins would help")

@@ -1,0 +1,183 @@
+"""One fit range set up for fitting: model, data vector, covariance and options.
+
+:func:`prepare_range` turns binned data and the options of a fit into a
+:class:`RangeProblem`, which the central fit (:mod:`plateaufit.fit.range_stack`)
+and the jackknife refits (:mod:`plateaufit.fit.correlator_fit`) work on.
+
+References
+----------
+O. Ledoit, M. Wolf, J. Multivar. Anal. 88 (2004) 365 -- the shrunk covariance
+of the mean (via :mod:`plateaufit.stats.covariance`).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass, field, replace
+from typing import Any
+
+import numpy as np
+
+from plateaufit.errors import FitError
+from plateaufit.fit.central import DEFAULT_TOL
+from plateaufit.fit.models import EFFECTIVE_MASS_KIND, CorrelatorModel, make_model
+from plateaufit.fit.whitening import cholesky_factor
+from plateaufit.stats import covariance as covmod
+from plateaufit.stats.effmass import effective_mass_jackknife
+
+__all__ = ["RangeProblem", "prepare_range", "as_observables"]
+
+
+@dataclass
+class RangeProblem:
+    """One fit range set up for fitting: model, data vector, covariance, options.
+
+    Built by :func:`prepare_range`; what :func:`central_of_range` and
+    :func:`refit_range` need.
+    """
+
+    model: CorrelatorModel
+    observables: tuple[str, ...]
+    tmin: int
+    tmax: int
+    states: int
+    form: str
+    x: np.ndarray                   # (n_bins, n_points) binned data in the range
+    y: np.ndarray                   # (n_points,) their mean
+    covariance: Any                 # CovarianceResult
+    chol: np.ndarray                # its lower Cholesky factor
+    n_total_points: int
+    covariance_options: dict
+    priors: Mapping[str, Any] | None = None
+    bounds: Mapping[str, Any] | None = None
+    start: Mapping[str, float] | None = None
+    per_sample: bool = False
+    engine: str = "auto"
+    tol: float = DEFAULT_TOL
+    effective_masses: tuple = ()    # ((value, error) over the range, per observable)
+    model_options: dict = field(default_factory=dict)
+    data: dict = field(default_factory=dict, repr=False)
+
+    @property
+    def n_bins(self) -> int:
+        return int(self.x.shape[0])
+
+    def y_by_observable(self) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray]]:
+        slices = self.model.point_slices()
+        return ({n: self.y[slices[n]] for n in self.observables},
+                {n: self.model.t_ranges[n] for n in self.observables})
+
+    def with_states(self, states: int) -> RangeProblem:
+        """The same range and data with another number of states (options restricted
+        to the parameters that model has)."""
+        t = np.arange(self.tmin, self.tmax + 1)
+        model = make_model(self.form, states, self.observables,
+                           {n: t for n in self.observables}, self.model.time_extent,
+                           **self.model_options)
+        keep = set(model.physical_names)
+
+        def restrict(d):
+            if not d:
+                return None
+            out = {k: v for k, v in d.items() if k in keep}
+            return out or None
+        return replace(self, model=model, states=int(states), priors=restrict(self.priors),
+                       bounds=restrict(self.bounds), start=restrict(self.start))
+
+
+def as_observables(binned) -> dict[str, np.ndarray]:
+    if isinstance(binned, Mapping):
+        data = {str(k): np.asarray(v, dtype=float) for k, v in binned.items()}
+    else:
+        data = {"corr": np.asarray(binned, dtype=float)}
+    if not data:
+        raise FitError("observables", "a fit needs at least one observable")
+    n_bins = None
+    for name, arr in data.items():
+        if arr.ndim != 2:
+            raise FitError(f"observables.{name}", f"binned data must have shape "
+                           f"(n_bins, n_t), got {arr.shape}")
+        if n_bins is not None and arr.shape[0] != n_bins:
+            raise FitError(f"observables.{name}", f"has {arr.shape[0]} bins but the other "
+                           f"observables of the fit have {n_bins}; bin them alike")
+        n_bins = arr.shape[0]
+    return data
+
+
+def prepare_range(binned, *, form: str, states: int, tmin: int, tmax: int,
+                  time_extent: int, priors: Mapping[str, Any] | None = None,
+                  bounds: Mapping[str, Any] | None = None,
+                  shrinkage: str | float = "ledoit-wolf", target: str = "diagonal",
+                  per_sample: bool = False, oscillating: int = 0, constant: bool = False,
+                  factorised: Mapping[str, tuple[str, str]] | None = None,
+                  formula: Mapping | None = None, start: Mapping[str, float] | None = None,
+                  engine: str = "auto", n_total_points: int | None = None,
+                  eigenvalue_floor: float | None = None,
+                  tol: float = DEFAULT_TOL,
+                  effective_masses: Mapping[str, Any] | None = None) -> RangeProblem:
+    """Set up one fit range (arguments as for :func:`fit_correlator`).
+
+    ``effective_masses``, observable -> :class:`plateaufit.stats.effmass.EffectiveMass`
+    of all its timeslices, saves computing them for every range of a scan (they
+    serve the plateau test of the diagnostics).
+
+    Raises
+    ------
+    plateaufit.errors.FitError
+        As :func:`fit_correlator`.
+    """
+    data = as_observables(binned)
+    names = list(data)
+    tmin, tmax = int(tmin), int(tmax)
+    for name, arr in data.items():
+        n_t = arr.shape[1]
+        if tmin < 0 or tmin >= n_t:
+            raise FitError("tmin", f"tmin={tmin} is outside the data of '{name}' "
+                           f"(timeslices 0..{n_t - 1})")
+        if tmax < tmin or tmax >= n_t:
+            raise FitError("tmax", f"tmax={tmax} must lie in {tmin}..{n_t - 1} for '{name}' "
+                           f"(tmin={tmin}, {n_t} timeslices)")
+    t = np.arange(tmin, tmax + 1)
+    model_options = {"oscillating": oscillating, "constant": constant,
+                     "factorised": factorised, "formula": formula}
+    model = make_model(form, states, names, {n: t for n in names}, time_extent,
+                       **model_options)
+    if model.n_points < model.n_params and not priors:
+        raise FitError("tmax", f"the range {tmin}..{tmax} gives {model.n_points} points for "
+                       f"{model.n_params} parameters; widen the range, use fewer states or "
+                       "add priors")
+    x = np.concatenate([data[n][:, tmin:tmax + 1] for n in names], axis=1)
+    n_bins = x.shape[0]
+    if n_bins < 2:
+        raise FitError("", f"a jackknife needs at least 2 bins, got {n_bins}")
+    if not np.all(np.isfinite(x)):
+        raise FitError("", "the binned data in the fit range hold non-finite values")
+    if n_total_points is None:
+        n_total_points = int(sum(arr.shape[1] for arr in data.values()))
+    cov_kw: dict[str, Any] = {"shrinkage": shrinkage, "target": target}
+    if eigenvalue_floor is not None:
+        cov_kw["eigenvalue_floor"] = eigenvalue_floor
+    cov_result = covmod.covariance_of_mean(x, **cov_kw)
+    chol = cholesky_factor(cov_result.matrix, n_bins)
+    effective = ()
+    kind = EFFECTIVE_MASS_KIND.get(form)
+    if kind is not None and not oscillating and tmax > tmin:
+        masses = []
+        for name in names:
+            # on all timeslices (the cosh/sinh masses depend on t itself),
+            # then the pairs (t, t + 1) inside the range
+            m = (effective_masses or {}).get(name)
+            if m is None:
+                with np.errstate(all="ignore"):
+                    m = effective_mass_jackknife(data[name][:, :tmax + 1], kind=kind,
+                                                 time_extent=time_extent)
+            masses.append((m.value[tmin:tmax], m.error[tmin:tmax]))
+        effective = tuple(masses)
+    return RangeProblem(
+        model=model, observables=tuple(names), tmin=tmin, tmax=tmax, states=int(states),
+        form=form, x=x, y=x.mean(axis=0), covariance=cov_result, chol=chol,
+        n_total_points=int(n_total_points), covariance_options=cov_kw, priors=priors,
+        bounds=bounds, start=start, per_sample=bool(per_sample), engine=engine, tol=tol,
+        effective_masses=effective, model_options=model_options)
+
+
