@@ -134,6 +134,9 @@ def test_unreadable_file_says_how_to_fix_permissions(tmp_path, data, monkeypatch
     refused(path, "permission denied", "chmod u+r")
     np.save(tmp_path / "c.npy", data)
     refused(tmp_path / "c.npy", "permission denied")
+    with h5py.File(tmp_path / "c.h5", "w") as f:
+        f["corr"] = data
+    refused(tmp_path / "c.h5", "permission denied")
 
 
 @pytest.mark.skipif(os.geteuid() == 0, reason="root reads files whatever their mode")

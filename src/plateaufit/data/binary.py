@@ -151,6 +151,8 @@ def read_hdf5(
     ``ids_dataset`` (:func:`integer_ids`), in file order; DataError when unreadable."""
     import h5py
 
+    with open_regular(p, ctx):  # readable (permissions) and still a regular file
+        pass
     try:
         handle = h5py.File(p, "r")
     except LIBRARY_ERRORS as exc:
