@@ -11,8 +11,8 @@ block the program or exhaust its memory:
 * :func:`open_regular` opens with ``O_NONBLOCK`` and checks the open
   descriptor again with ``fstat``, so a path swapped for a FIFO between the
   ``stat`` and the ``open`` cannot block either.
-* :func:`read_text` reads at most ``limit + 1`` bytes -- a file that grows
-  while it is read still cannot exhaust memory -- and decodes them as UTF-8
+* :func:`read_text` reads at most ``limit`` bytes (plus one block) -- a file
+  that grows while it is read still cannot exhaust memory -- and decodes them as UTF-8
   (an optional UTF-8 byte order mark is skipped), refusing UTF-16/UTF-32 and
   binary files with a message that says what they are and what to do.
 
@@ -220,14 +220,30 @@ def read_text(path: Path, ctx: FileContext, *, limit: int | None, what: str = "t
         raise _too_large(size, limit, ctx)
     with open_regular(path, ctx) as handle:
         try:
-            data = handle.read() if limit is None else handle.read(limit + 1)
+            data = _read_bounded(handle, size, limit, ctx)
         except OSError as exc:
             raise _os_error(exc, ctx) from None
-    if limit is not None and len(data) > limit:
-        raise _too_large(len(data), limit, ctx)  # it grew while being read
     if not data:
         raise ctx.error(f"the file is empty (0 bytes); expected {what} data")
     return decode_text(data, ctx, what)
+
+
+def _read_bounded(handle: BinaryIO, size: int, limit: int | None, ctx: FileContext) -> bytes:
+    """All bytes of ``handle``, never more than ``limit``: a buffer of the stat'ed size is
+    read at once (a read of ``limit`` bytes would allocate them), then -- only when the
+    file grew meanwhile -- the rest in blocks until the limit is passed."""
+    data = handle.read(size + 1)
+    if len(data) <= size:
+        return data
+    parts, total = [data], len(data)
+    while True:
+        if limit is not None and total > limit:
+            raise _too_large(total, limit, ctx)  # it grew while being read
+        block = handle.read(1 << 20)
+        if not block:
+            return b"".join(parts)
+        parts.append(block)
+        total += len(block)
 
 
 def decode_text(data: bytes, ctx: FileContext, what: str = "text") -> str:

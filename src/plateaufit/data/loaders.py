@@ -45,7 +45,6 @@ file and saying what to do.
 
 from __future__ import annotations
 
-import io
 import math
 import os
 import warnings
@@ -401,7 +400,7 @@ def _read_text(p: Path, ctx: FileContext, limit: int | None) -> np.ndarray:
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")  # "input contained no data" and the like
-            values = np.loadtxt(io.StringIO(text), comments="#", dtype=np.float64, ndmin=2)
+            values = np.loadtxt(text.split("\n"), comments="#", dtype=np.float64, ndmin=2)
     except (ValueError, TypeError, OverflowError, IndexError):
         # The fast C parser counts only data rows; find the offending line.
         raise _diagnose_text(text, ctx) from None
