@@ -520,3 +520,14 @@ def test_paths_with_spaces_and_unicode(tmp_path, data, name):
     # and an error names such a path in full
     missing = path.with_name("missing " + name)
     refused(missing, "not found")
+
+
+def test_a_file_growing_while_read_is_still_bounded(tmp_path):
+    import io
+
+    ctx = files_module.FileContext(tmp_path / "growing.txt")
+    # stat said 10 bytes, but 100 arrive: read on in blocks, refused past the limit
+    with pytest.raises(DataError, match="above the limit"):
+        files_module._read_bounded(io.BytesIO(b"1 " * 50), 10, 50, ctx)
+    assert files_module._read_bounded(io.BytesIO(b"1 " * 50), 10, 1000, ctx) == b"1 " * 50
+    assert files_module._read_bounded(io.BytesIO(b"1 2\n"), 4, None, ctx) == b"1 2\n"
