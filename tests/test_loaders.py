@@ -144,21 +144,36 @@ def test_csv_with_streams_and_imag_in_any_row_order(tmp_path, data):
     path = tmp_path / "c.csv"
     write_long_csv(path, data, ids=ids, streams=streams, imag=imag, shuffle_seed=3)
     raw = load_correlator(path)
-    # ordered by stream, then config id
-    order = np.lexsort((ids, streams))
+    # streams in order of first appearance in the (shuffled) file, then config id
+    first_stream = int(path.read_text().splitlines()[2].split(",")[0])
+    rank = np.where(streams == first_stream, 0, 1)
+    order = np.lexsort((ids, rank))
     np.testing.assert_array_equal(raw.values, data[order])
     np.testing.assert_array_equal(raw.config_ids, ids[order])
     np.testing.assert_array_equal(raw.streams, streams[order])
+    assert list(raw.stream_names) == [first_stream, 3 - first_stream]
+    assert raw.reordered  # the shuffled rows were sorted
     np.testing.assert_array_equal(load_correlator(path, part="imag").values, imag[order])
 
 
-def test_csv_text_stream_labels(tmp_path, data):
+def test_csv_text_stream_labels_in_order_of_appearance(tmp_path, data):
     streams = np.array(["b"] * 5 + ["a"] * 7)
     write_long_csv(tmp_path / "c.csv", data, streams=streams)
     raw = load_correlator(tmp_path / "c.csv")
-    # labels numbered in sorted order: a -> 0, b -> 1
-    np.testing.assert_array_equal(raw.streams, [0] * 7 + [1] * 5)
-    np.testing.assert_array_equal(raw.values[:7], data[5:])
+    # labels numbered in order of first appearance in the file: b -> 0, a -> 1
+    np.testing.assert_array_equal(raw.streams, [0] * 5 + [1] * 7)
+    assert raw.stream_names == {0: "b", 1: "a"}
+    np.testing.assert_array_equal(raw.values, data)
+    assert not raw.reordered
+
+
+def test_csv_integer_stream_labels_keep_their_values_in_file_order(tmp_path, data):
+    streams = np.array([7] * 4 + [3] * 8)
+    write_long_csv(tmp_path / "c.csv", data, streams=streams)
+    raw = load_correlator(tmp_path / "c.csv")
+    np.testing.assert_array_equal(raw.streams, streams)
+    assert raw.stream_names == {7: "7", 3: "3"}
+    np.testing.assert_array_equal(raw.values, data)
 
 
 # --------------------------------------------------------------------------- errors

@@ -172,3 +172,62 @@ def test_choose_bin_size_rule_and_cap():
         assert choose_bin_size([3.0], 12) == 1
     with pytest.raises(DataError, match="no finite tau_int"):
         choose_bin_size([np.nan], 100)
+
+
+# --------------------------------------------------------------------------- too short to estimate
+
+
+def test_two_measurements_give_nan_not_a_negative_tau():
+    # With N = 2, Gamma(1) = -Gamma(0) exactly, so the estimated variance of the mean
+    # is negative: there is no estimate (it used to print -2.50 +- -7.07).
+    with pytest.warns(ShortChainWarning, match="too short"):
+        r = tau_int(np.array([0.31, 0.42]))
+    assert np.isnan(r.tau) and np.isnan(r.error) and np.isnan(r.value_error)
+    assert not r.reliable
+    assert r.value == pytest.approx(0.365)
+
+
+def test_three_measurements_either_positive_and_unreliable_or_nan():
+    # monotone: a (poor) positive estimate, flagged unreliable, with a non-negative error
+    with pytest.warns(ShortChainWarning):
+        r = tau_int(np.array([1.0, 2.0, 4.0]))
+    assert r.tau > 0 and r.error >= 0 and not r.reliable and np.isfinite(r.value_error)
+    # the middle one the largest: the variance of the mean comes out negative -> NaN
+    with pytest.warns(ShortChainWarning, match="too short"):
+        r = tau_int(np.array([1.0, 3.0, 2.0]))
+    assert np.isnan(r.tau) and np.isnan(r.error) and not r.reliable
+
+
+@pytest.mark.parametrize("n", [2, 3, 4, 5, 6, 8, 12])
+def test_short_series_never_give_a_negative_tau_or_error(n):
+    rng = np.random.default_rng(40 + n)
+    for _ in range(200):
+        x = rng.standard_normal(n)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", ShortChainWarning)
+            r = tau_int(x)
+            d = tau_int_derived(np.column_stack([x, x**2 + 3]), lambda m: m[1] / (1 + m[0] ** 2))
+        for res in (r, d):
+            assert np.isnan(res.tau) or res.tau > 0
+            assert np.isnan(res.error) or res.error >= 0
+            assert np.isnan(res.tau) == np.isnan(res.error)
+            assert np.isnan(res.tau) <= (not res.reliable)
+
+
+def test_strictly_alternating_series_has_no_tau_estimate():
+    with pytest.warns(ShortChainWarning, match="anticorrelated"):
+        r = tau_int(np.tile([1.0, -1.0], 200))
+    assert np.isnan(r.tau) and not r.reliable
+
+
+def test_constant_short_series_and_a_single_measurement():
+    for n in (2, 3):
+        with warnings.catch_warnings():
+            warnings.simplefilter("error")
+            r = tau_int(np.full(n, 0.75))
+        assert r.tau == 0.5 and r.error == 0.0 and r.value_error == 0.0 and r.reliable
+    with pytest.raises(DataError, match="at least 2 measurements") as err:
+        tau_int(np.array([0.75]))
+    assert err.value.where == "series"
+    with pytest.raises(DataError, match="at least 2 measurements"):
+        tau_int_derived(np.ones((1, 2)), lambda m: m[0])

@@ -1,22 +1,30 @@
 """Align several correlators measured on one ensemble, configuration by configuration.
 
-Rules (what :func:`align_observables` does):
+Rules (what :func:`align_observables` does). None of them depends on the order
+in which the observables are given: permuting them permutes nothing but the
+keys of the result.
 
 * Every correlator must have ``time_extent`` timeslices per configuration.
 * **Alignment.** When every observable knows its configuration ids, they are
   matched by id (by ``(stream, id)`` when every file also knows the streams);
   the sets must be equal -- a configuration measured for one observable and
   not for another is an error naming the missing ids, since silently dropping
-  configurations changes the statistics. The order is that of the first
-  observable. When some observable has no ids, the files are taken row by row
-  in file order, and all must have the same number of configurations.
+  configurations changes the statistics. Ids count Monte Carlo time: the
+  configurations come out by stream, then by ascending id. When some
+  observable has no ids, the files are taken row by row (each in the order
+  its loader returns: text and npy in file order), all must have the same
+  number of configurations, and the ids the others know must agree row by row.
 * **Streams** (independent Monte Carlo chains) come from the files (a CSV
   ``stream`` column), else from ``stream_counts`` (numbers of configurations
-  per stream, in file order), else there is one stream. When both the files
-  and ``stream_counts`` give streams, they must agree. Streams are contiguous
-  blocks of configurations: when the aligned order interleaves them, the
-  configurations are grouped by stream, streams in order of first appearance,
-  keeping the Monte Carlo order within each stream.
+  per stream, counted in each file's own order of the configurations,
+  :attr:`~plateaufit.data.loaders.RawCorrelator.file_rows`), else there is one
+  stream. Stream labels are matched by the label as written in the file. The
+  order of the streams is their order of first appearance in the files; when
+  files list the same streams in different orders, it is the sorted order of
+  the labels (integers numerically), unless ``stream_counts`` are given, which
+  is then an error. When both the files and ``stream_counts`` give streams, the
+  counts must equal the files' stream sizes in that order. Streams are
+  contiguous blocks of configurations in the result.
 * **Folding** is applied per observable after alignment
   (:func:`plateaufit.data.transforms.fold`).
 """
@@ -24,7 +32,7 @@ Rules (what :func:`align_observables` does):
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -51,13 +59,23 @@ class Ensemble:
         are the same configurations in the same (Monte Carlo) order.
     streams : numpy.ndarray
         ``(n_cfg,)`` int stream label of each configuration; each stream is
-        one contiguous block.
+        one contiguous block, streams in order of first appearance.
     config_ids : numpy.ndarray or None
         ``(n_cfg,)`` configuration ids, when the files know them.
     boundaries : dict[str, str]
         NAME -> periodic | antiperiodic | open.
     folded : dict[str, bool]
         NAME -> whether the correlator was folded.
+    stream_names : dict[int, str] or None
+        Stream label -> the label as written in the files (a CSV ``stream``
+        column), in stream order; None when the streams come from
+        ``stream_counts`` or there is one stream without a label.
+    reordered : tuple of str
+        The observables whose loader put the file's rows in another order
+        (HDF5 rows stored out of id order, CSV configurations out of order);
+        a data summary should say so.
+    aligned_by : {'ids', 'rows'}
+        Whether the observables were matched by configuration id or row by row.
     """
 
     name: str
@@ -67,6 +85,9 @@ class Ensemble:
     config_ids: np.ndarray | None
     boundaries: dict[str, str]
     folded: dict[str, bool]
+    stream_names: dict[int, str] | None = None
+    reordered: tuple[str, ...] = ()
+    aligned_by: str = "rows"
 
     @property
     def n_configs(self) -> int:
@@ -103,15 +124,15 @@ def align_observables(
     Parameters
     ----------
     raws : mapping NAME -> RawCorrelator
-        At least one observable.
+        At least one observable. The result does not depend on their order.
     name : str
         Name of the ensemble.
     time_extent : int
         ``T``; every correlator must have this many timeslices.
     stream_counts : sequence of int, optional
-        Configurations per stream in file order (the spec's
-        ``ensemble.streams``); their sum must equal the number of
-        configurations.
+        Configurations per stream, in the order the files store the
+        configurations (the spec's ``ensemble.streams``); their sum must equal
+        the number of configurations.
     boundaries : mapping NAME -> {'periodic', 'antiperiodic', 'open'}
         Missing names default to periodic.
     fold : mapping NAME -> bool
@@ -128,7 +149,8 @@ def align_observables(
         A correlator has the wrong number of timeslices (naming the file and
         both numbers); configuration ids differ between observables (listing
         missing ids per observable); counts differ where ids are unknown
-        (naming each observable's count); streams are inconsistent.
+        (naming each observable's count); streams are inconsistent between
+        files, listed in different orders, or disagree with ``stream_counts``.
     """
     if not raws:
         raise DataError("observables", "no observables to align; define at least one")
@@ -145,10 +167,26 @@ def align_observables(
             )
 
     names = list(raws)
+    raws = dict(raws)
+    counts = None if stream_counts is None else _valid_counts(stream_counts)
+    from_counts = counts is not None and all(raws[n].streams is None for n in names)
+    if from_counts and len({raws[n].n_configs for n in names}) > 1:
+        # the observables disagree already: the alignment names each one's configurations
+        if all(raws[n].config_ids is not None for n in names):
+            _align_by_ids(raws, False)
+        else:
+            _align_by_count(raws, False)
+    if from_counts:
+        # label every file's configurations by the counts, in that file's own order
+        raws = {n: _label_by_counts(n, raws[n], counts) for n in names}
+    stream_order = _stream_order(raws, from_counts, counts)
+
     if all(raws[n].config_ids is not None for n in names):
-        order, ids, streams = _align_by_ids(raws)
+        order, ids, labels = _align_by_ids(raws, from_counts)
+        aligned_by = "ids"
     else:
-        order, ids, streams = _align_by_count(raws)
+        order, ids, labels = _align_by_count(raws, from_counts)
+        aligned_by = "rows"
 
     values = {n: raws[n].values[order[n]] for n in names}
     n_cfg = next(iter(values.values())).shape[0]
@@ -158,10 +196,12 @@ def align_observables(
             f"only {n_cfg} configuration; statistical errors need at least two",
         )
 
-    streams = _resolve_streams(streams, stream_counts, n_cfg)
-    perm = _contiguous_order(streams)
+    codes, ordered, stream_names = _stream_codes(labels, stream_order, raws, from_counts, n_cfg)
+    if counts is not None and not from_counts:
+        _check_counts(codes, ordered, stream_names, counts)
+    perm = _grouping_order(codes, ordered, ids if aligned_by == "ids" else None)
     if perm is not None:
-        streams = streams[perm]
+        codes = codes[perm]
         values = {n: v[perm] for n, v in values.items()}
         ids = None if ids is None else ids[perm]
 
@@ -177,8 +217,145 @@ def align_observables(
         bnd[n] = b
         folded[n] = f
         correlators[n] = fold_correlator(values[n], b) if f else np.ascontiguousarray(values[n])
-    return Ensemble(name=name, time_extent=T, correlators=correlators, streams=streams,
-                    config_ids=ids, boundaries=bnd, folded=folded)
+    return Ensemble(name=name, time_extent=T, correlators=correlators, streams=codes,
+                    config_ids=ids, boundaries=bnd, folded=folded,
+                    stream_names=None if from_counts else stream_names,
+                    reordered=tuple(n for n in names if raws[n].reordered),
+                    aligned_by=aligned_by)
+
+
+# --------------------------------------------------------------------------- streams
+
+
+def _labels(raw: RawCorrelator) -> np.ndarray | None:
+    """Per row, the stream label as written in the file (object array of str), or None."""
+    if raw.streams is None:
+        return None
+    names = raw.stream_names or {}
+    return np.asarray([names.get(int(c), str(int(c))) for c in raw.streams.tolist()],
+                      dtype=object)
+
+
+def _appearance(labels: np.ndarray) -> list[str]:
+    """The distinct labels in order of first appearance."""
+    _, first = np.unique(labels, return_index=True)
+    return [str(labels[i]) for i in np.sort(first)]
+
+
+def _valid_counts(stream_counts: Sequence[int]) -> list[int]:
+    try:
+        counts = [int(c) for c in stream_counts]
+    except (TypeError, ValueError):
+        raise DataError("ensemble.streams", f"stream counts must be whole numbers >= 1, got "
+                        f"{list(stream_counts)!r}") from None
+    if not counts or any(c < 1 for c in counts):
+        raise DataError("ensemble.streams", f"stream counts must be whole numbers >= 1, "
+                        f"got {counts}")
+    return counts
+
+
+def _label_by_counts(name: str, raw: RawCorrelator, counts: list[int]) -> RawCorrelator:
+    """The raw with streams 0, 1, ... assigned by ``counts`` in the file's order."""
+    n = raw.n_configs
+    if sum(counts) != n:
+        raise DataError(
+            "ensemble.streams",
+            f"the stream counts {counts} add up to {sum(counts)} configurations but the "
+            f"data have {n} ({name}: {raw.source}); they must be equal",
+        )
+    in_file_order = np.repeat(np.arange(len(counts), dtype=np.int64), counts)
+    codes = in_file_order if raw.file_rows is None else in_file_order[raw.file_rows]
+    return replace(raw, streams=codes, stream_names={i: str(i) for i in range(len(counts))})
+
+
+def _label_key(label: str):
+    """Sort key of stream labels: integers numerically, before text labels."""
+    try:
+        return (0, int(label), "")
+    except ValueError:
+        return (1, 0, label)
+
+
+def _stream_order(raws: dict[str, RawCorrelator], from_counts: bool,
+                  counts: list[int] | None) -> list[str] | None:
+    """The labels in stream order: of first appearance, which must agree between files
+    when ``stream_counts`` are given; sorted labels when files disagree without counts."""
+    if from_counts:
+        return [str(i) for i in range(len(counts))]
+    orders = {n: _appearance(_labels(r)) for n, r in raws.items() if r.streams is not None}
+    if not orders:
+        return None
+    if len({tuple(o) for o in orders.values()}) == 1:
+        return next(iter(orders.values()))
+    same_sets = len({frozenset(o) for o in orders.values()}) == 1
+    if same_sets and counts is not None:
+        listed = "; ".join(f"{n} ({raws[n].source.name}): {', '.join(o)}"
+                           for n, o in sorted(orders.items()))
+        raise DataError(
+            "ensemble.streams",
+            f"the files list the same streams in different orders ({listed}), so it is not "
+            "clear which count belongs to which stream (counts follow the order of first "
+            "appearance); list the streams in the same order in every file",
+        )
+    # Differing label sets are reported by the alignment; without counts the order of the
+    # streams changes nothing but their order in the output: take the labels sorted.
+    return sorted({label for o in orders.values() for label in o}, key=_label_key)
+
+
+def _stream_codes(labels: np.ndarray | None, stream_order: list[str] | None,
+                  raws: dict[str, RawCorrelator], from_counts: bool, n_cfg: int):
+    """Integer stream code per configuration, the codes in stream order, and
+    code -> label (None when the labels are not the files')."""
+    if labels is None:
+        return np.zeros(n_cfg, dtype=np.int64), [0], None
+    if from_counts:
+        return (np.asarray([int(s) for s in labels], dtype=np.int64),
+                list(range(len(stream_order))), None)
+    # Every file gives the same label the same code (integer labels are their own codes;
+    # text labels are numbered by appearance, which agrees between files). Should two
+    # files still disagree, number the labels in stream order instead.
+    code_of: dict[str, int] = {}
+    consistent = True
+    for n in sorted(raws):
+        raw = raws[n]
+        if raw.streams is None:
+            continue
+        names = raw.stream_names or {}
+        for code in np.unique(raw.streams).tolist():
+            label = names.get(int(code), str(int(code)))
+            consistent &= code_of.setdefault(label, int(code)) == int(code)
+    if not consistent or len(set(code_of.values())) != len(code_of):
+        code_of = {label: i for i, label in enumerate(stream_order)}
+    codes = np.asarray([code_of[str(s)] for s in labels], dtype=np.int64)
+    ordered = [code_of[label] for label in stream_order]
+    return codes, ordered, {code_of[label]: label for label in stream_order}
+
+
+def _check_counts(codes: np.ndarray, ordered: list[int], stream_names: dict[int, str],
+                  counts: list[int]) -> None:
+    file_counts = [int(np.count_nonzero(codes == c)) for c in ordered]
+    if file_counts != counts:
+        shown = ", ".join(f"{stream_names[c]}: {k}" for c, k in zip(ordered, file_counts))
+        raise DataError(
+            "ensemble.streams",
+            f"the counts {counts} disagree with the files' stream column (counts "
+            f"{file_counts}: {shown}, streams in order of first appearance); remove "
+            "ensemble.streams or make them agree",
+        )
+
+
+def _grouping_order(codes: np.ndarray, ordered: list[int],
+                    ids: np.ndarray | None) -> np.ndarray | None:
+    """Permutation making each stream one block, streams in the order ``ordered``, by
+    ascending id within a stream when ids are given (else keeping the row order);
+    None when nothing moves."""
+    rank_of = {c: r for r, c in enumerate(ordered)}
+    rank = np.asarray([rank_of[c] for c in codes.tolist()], dtype=np.int64)
+    if ids is None:
+        perm = np.argsort(rank, kind="stable")
+    else:
+        perm = np.lexsort((ids, rank))
+    return None if np.array_equal(perm, np.arange(perm.size)) else perm
 
 
 # --------------------------------------------------------------------------- alignment
@@ -187,7 +364,7 @@ def align_observables(
 def _keys(raw: RawCorrelator, with_streams: bool) -> list:
     ids = raw.config_ids.tolist()
     if with_streams:
-        return list(zip(raw.streams.tolist(), ids))
+        return list(zip(_labels(raw).tolist(), ids))
     return ids
 
 
@@ -197,12 +374,24 @@ def _show(keys: list, with_streams: bool) -> str:
     return text + (f", ... ({len(keys)} in all)" if len(keys) > _SHOW_IDS else "")
 
 
-def _align_by_ids(raws: Mapping[str, RawCorrelator]):
+def _split_differently(raws: dict[str, RawCorrelator], names: list[str]) -> DataError:
+    moved = [n for n in names if raws[n].reordered]
+    why = (f" ({', '.join(f'{n} ({raws[n].source.name})' for n in moved)} stored its "
+           "configurations out of id order)") if moved else ""
+    return DataError(
+        "ensemble.streams",
+        "the stream counts split the observables' configurations differently, because the "
+        f"files store them in different orders{why}; give the files stream labels (a CSV "
+        "stream column) or store every file's configurations in Monte Carlo order",
+    )
+
+
+def _align_by_ids(raws: dict[str, RawCorrelator], from_counts: bool):
     names = list(raws)
     with_streams = all(raws[n].streams is not None for n in names)
     keys = {n: _keys(raws[n], with_streams) for n in names}
     if not with_streams:
-        for n in names:
+        for n in sorted(names):
             if len(set(keys[n])) != len(keys[n]):
                 raise DataError(
                     str(raws[n].source),
@@ -217,25 +406,28 @@ def _align_by_ids(raws: Mapping[str, RawCorrelator]):
         if missing:
             problems.append(f"{n} ({raws[n].source.name}) lacks {_show(list(missing), with_streams)}")
     if problems:
-        first = next(n for n in names if union.difference(keys[n]))
+        if from_counts and len({frozenset(raws[n].config_ids.tolist()) for n in names}) == 1:
+            raise _split_differently(raws, names)
+        first = sorted(n for n in names if union.difference(keys[n]))[0]
         raise DataError(
             str(raws[first].source),
             "configurations differ between observables: " + "; ".join(problems)
             + ". Measure every observable on the same configurations, or remove the extra ones",
         )
-    reference = keys[names[0]]
+    # a canonical order, the same whichever observable comes first: by id (streams are
+    # grouped afterwards, keeping the id order within each)
+    reference = sorted(union, key=lambda k: (k[1], str(k[0]))) if with_streams else sorted(union)
     order = {}
     for n in names:
         position = {k: i for i, k in enumerate(keys[n])}
         order[n] = np.fromiter((position[k] for k in reference), dtype=np.int64,
                                count=len(reference))
-    first = raws[names[0]]
-    ids = first.config_ids.copy()
-    streams = _common_streams(raws, order)
-    return order, ids, streams
+    ids = np.asarray([k[1] for k in reference] if with_streams else reference, dtype=np.int64)
+    labels = _common_labels(raws, order, from_counts)
+    return order, ids, labels
 
 
-def _align_by_count(raws: Mapping[str, RawCorrelator]):
+def _align_by_count(raws: dict[str, RawCorrelator], from_counts: bool):
     names = list(raws)
     counts = {n: raws[n].values.shape[0] for n in names}
     if len(set(counts.values())) > 1:
@@ -249,7 +441,7 @@ def _align_by_count(raws: Mapping[str, RawCorrelator]):
     n_cfg = counts[names[0]]
     order = {n: np.arange(n_cfg) for n in names}
     ids = None
-    with_ids = [n for n in names if raws[n].config_ids is not None]
+    with_ids = sorted(n for n in names if raws[n].config_ids is not None)
     if with_ids:
         ref = raws[with_ids[0]].config_ids
         for n in with_ids[1:]:
@@ -261,75 +453,26 @@ def _align_by_count(raws: Mapping[str, RawCorrelator]):
                     "its ids or bring them into the same order",
                 )
         ids = ref.copy()
-    return order, ids, _common_streams(raws, order)
+    return order, ids, _common_labels(raws, order, from_counts)
 
 
-def _common_streams(raws: Mapping[str, RawCorrelator], order) -> np.ndarray | None:
-    streams = None
+def _common_labels(raws: dict[str, RawCorrelator], order, from_counts: bool):
+    """Per aligned configuration, its stream label; DataError when files disagree."""
+    labels = None
     source = ""
-    for n, raw in raws.items():
+    for n in sorted(raws):
+        raw = raws[n]
         if raw.streams is None:
             continue
-        s = raw.streams[order[n]]
-        if streams is None:
-            streams, source = s, n
-        elif not np.array_equal(s, streams):
+        s = _labels(raw)[order[n]]
+        if labels is None:
+            labels, source = s, n
+        elif not np.array_equal(s, labels):
+            if from_counts:
+                raise _split_differently(raws, sorted(raws))
             raise DataError(
                 str(raw.source),
                 f"observables {source!r} and {n!r} give different stream labels for the same "
                 "configurations; fix the stream column",
             )
-    return None if streams is None else streams.astype(np.int64)
-
-
-# --------------------------------------------------------------------------- streams
-
-
-def _resolve_streams(
-    from_files: np.ndarray | None, stream_counts: Sequence[int] | None, n_cfg: int
-) -> np.ndarray:
-    from_counts = None
-    if stream_counts is not None:
-        counts = [int(c) for c in stream_counts]
-        if not counts or any(c < 1 for c in counts):
-            raise DataError("ensemble.streams", f"stream counts must be whole numbers >= 1, "
-                            f"got {counts}")
-        if sum(counts) != n_cfg:
-            raise DataError(
-                "ensemble.streams",
-                f"the stream counts {counts} add up to {sum(counts)} configurations but the "
-                f"data have {n_cfg}; they must be equal",
-            )
-        from_counts = np.repeat(np.arange(len(counts), dtype=np.int64), counts)
-    if from_files is not None and from_counts is not None:
-        labels, first = np.unique(from_files, return_index=True)
-        in_order = labels[np.argsort(first)]
-        file_counts = [int(np.count_nonzero(from_files == s)) for s in in_order]
-        if file_counts != [int(c) for c in stream_counts] or not _is_contiguous(from_files):
-            raise DataError(
-                "ensemble.streams",
-                f"the counts {list(stream_counts)} disagree with the files' stream column "
-                f"(counts {file_counts}); remove ensemble.streams or make them agree",
-            )
-        return from_files
-    if from_files is not None:
-        return from_files
-    if from_counts is not None:
-        return from_counts
-    return np.zeros(n_cfg, dtype=np.int64)
-
-
-def _is_contiguous(streams: np.ndarray) -> bool:
-    changes = int(np.count_nonzero(streams[1:] != streams[:-1]))
-    return changes == np.unique(streams).size - 1
-
-
-def _contiguous_order(streams: np.ndarray) -> np.ndarray | None:
-    """A stable permutation making each stream one block, or None when already so."""
-    if _is_contiguous(streams):
-        return None
-    labels, first = np.unique(streams, return_index=True)
-    rank = np.empty(labels.size, dtype=np.int64)
-    rank[np.argsort(first)] = np.arange(labels.size)
-    code = rank[np.searchsorted(labels, streams)]
-    return np.argsort(code, kind="stable")
+    return labels

@@ -11,33 +11,40 @@ Accepted formats (``format=`` or, by default, the file suffix):
 
 ``text`` (``.txt``, ``.dat``)
     Whitespace-separated real numbers, one row per configuration, one column
-    per timeslice; ``#`` starts a comment. Blank lines are ignored.
+    per timeslice; ``#`` starts a comment. Blank lines are ignored. UTF-8 (or
+    ASCII), with or without a byte order mark.
 ``npy`` (``.npy``)
     A 2-D array, real or complex (or a compound dtype of two real fields, read
-    as real and imaginary part).
+    as real and imaginary part). Never unpickled: object arrays are refused.
 ``npz`` (``.npz``)
     The array named ``array``; when it is not given and the archive holds
     exactly one array, that one.
 ``hdf5`` (``.h5``, ``.hdf5``)
     The 2-D dataset at path ``dataset`` (required when the file holds more than
     one dataset), real, complex or compound ``(r, i)``; optionally the 1-D
-    integer dataset ``ids_dataset`` holding the configuration ids.
+    integer dataset ``ids_dataset`` holding the configuration ids. The ids
+    count Monte Carlo time: rows stored out of id order are sorted by id
+    (``RawCorrelator.file_rows`` then records the permutation).
 ``csv`` (``.csv``)
     Long form with a header line naming the columns ``config``, ``t``,
     ``value`` and optionally ``stream`` and ``imag``, one row per
-    (configuration, timeslice). Rows may come in any order. The result is
-    ordered by stream label, then by ascending configuration id within each
-    stream (configuration ids are taken to count Monte Carlo time), so every
-    stream is one contiguous block. Integer stream labels are kept; text labels
-    are numbered 0, 1, ... in sorted order.
+    (configuration, timeslice), rows in any order
+    (:mod:`plateaufit.data.long_csv`). Streams come in order of first
+    appearance in the file, configurations by ascending id within each stream.
 
 Complex data: the real part is returned unless ``part="imag"``.
+
+Every input is checked before it is parsed (:mod:`plateaufit.data.files`):
+regular files only (a FIFO, device, socket or directory is refused without
+being opened for reading), no empty files, text and CSV files no larger than
+``max_text_bytes``. Every malformed file -- truncated, corrupt, wrongly
+encoded, of the wrong rank or type, holding NaN, inf or values whose squares
+overflow or underflow double precision -- is a :class:`DataError` naming the
+file and saying what to do.
 """
 
 from __future__ import annotations
 
-import csv
-import io
 import math
 import os
 import warnings
@@ -46,9 +53,13 @@ from pathlib import Path
 
 import numpy as np
 
+from plateaufit.data.binary import read_hdf5, read_npy, read_npz
+from plateaufit.data.files import MAX_TEXT_BYTES, FileContext, read_text, regular_file_size
+from plateaufit.data.long_csv import parse_long_csv
 from plateaufit.errors import DataError
 
-__all__ = ["RawCorrelator", "load_correlator", "FORMATS", "SUFFIXES", "format_from_suffix"]
+__all__ = ["RawCorrelator", "load_correlator", "FORMATS", "SUFFIXES", "format_from_suffix",
+           "MAX_TEXT_BYTES", "LARGEST_VALUE", "SMALLEST_SCALE"]
 
 #: The accepted values of ``format``.
 FORMATS: tuple[str, ...] = ("text", "npy", "npz", "hdf5", "csv")
@@ -64,10 +75,18 @@ SUFFIXES: dict[str, str] = {
     ".csv": "csv",
 }
 
-_PARTS = ("real", "imag")
-_CSV_REQUIRED = ("config", "t", "value")
-_CSV_OPTIONAL = ("stream", "imag")
+#: Largest magnitude of a value: squares of 1e150 summed over 1e8 entries stay
+#: below the largest double (1.8e308), so means, variances and covariances of
+#: any real ensemble cannot overflow.
+LARGEST_VALUE: float = 1e150
 
+#: Smallest nonzero magnitude of the largest value of a timeslice: below it the
+#: squares of the fluctuations underflow double precision (2.2e-308) and no
+#: variance can be computed. Values in the subnormal range (below 2.2e-308)
+#: have lost precision themselves and are refused everywhere.
+SMALLEST_SCALE: float = 1e-150
+
+_PARTS = ("real", "imag")
 
 @dataclass(frozen=True)
 class RawCorrelator:
@@ -78,19 +97,46 @@ class RawCorrelator:
     values : numpy.ndarray
         ``(n_cfg, n_t)`` float64, rows in Monte Carlo order.
     config_ids : numpy.ndarray or None
-        ``(n_cfg,)`` int64 configuration ids, when the file knows them
-        (CSV ``config`` column, HDF5 ``ids_dataset``).
+        ``(n_cfg,)`` int64 configuration ids (non-negative, unique within a
+        stream, ascending within each stream), when the file knows them (CSV
+        ``config`` column, HDF5 ``ids_dataset``).
     streams : numpy.ndarray or None
-        ``(n_cfg,)`` int64 stream label of each configuration, when the file
-        knows them (CSV ``stream`` column).
+        ``(n_cfg,)`` int64 stream code of each configuration, when the file
+        knows them (CSV ``stream`` column); each stream is one contiguous
+        block, streams in order of first appearance in the file. Integer
+        labels are their own codes; text labels are numbered 0, 1, ... in
+        order of appearance.
     source : pathlib.Path
         The file the values came from.
+    stream_names : dict[int, str] or None
+        Stream code -> label as written in the file, in order of appearance
+        (None when the file has no streams).
+    file_rows : numpy.ndarray or None
+        ``(n_cfg,)`` int64: row ``i`` holds the configuration the file stores
+        at position ``file_rows[i]`` (HDF5: the row of the dataset; CSV: the
+        order in which the configurations first appear). None when the rows
+        are in the file's order. The loader reorders HDF5 rows stored out of
+        id order and CSV configurations that appear out of (stream, id) order.
     """
 
     values: np.ndarray
     config_ids: np.ndarray | None
     streams: np.ndarray | None
     source: Path
+    stream_names: dict[int, str] | None = None
+    file_rows: np.ndarray | None = None
+
+    @property
+    def reordered(self) -> bool:
+        """Whether the rows were put in another order than the file's (Monte Carlo order)."""
+        return self.file_rows is not None
+
+    @property
+    def n_moved(self) -> int:
+        """Number of configurations not at their file position (0 when not reordered)."""
+        if self.file_rows is None:
+            return 0
+        return int(np.count_nonzero(self.file_rows != np.arange(self.file_rows.size)))
 
     @property
     def n_configs(self) -> int:
@@ -108,17 +154,6 @@ def format_from_suffix(path: str | os.PathLike[str]) -> str | None:
     return SUFFIXES.get(Path(path).suffix.lower())
 
 
-class _Ctx:
-    """Builds DataErrors that name the file, and the spec key when known."""
-
-    def __init__(self, path: Path, where: str) -> None:
-        self.path = path
-        self.where = where
-
-    def error(self, message: str) -> DataError:
-        return DataError(self.where or str(self.path), f"{self.path}: {message}")
-
-
 def load_correlator(
     path: str | os.PathLike[str],
     *,
@@ -128,6 +163,7 @@ def load_correlator(
     array: str | None = None,
     part: str = "real",
     where: str = "",
+    max_text_bytes: int | None = MAX_TEXT_BYTES,
 ) -> RawCorrelator:
     """Read one per-configuration correlator from a file.
 
@@ -135,7 +171,7 @@ def load_correlator(
     ----------
     path : path-like
         The file (already resolved; relative paths are taken relative to the
-        current directory).
+        current directory). Must be a regular file (or a symbolic link to one).
     format : {'text', 'npy', 'npz', 'hdf5', 'csv'}, optional
         Default: from the suffix (``.txt``/``.dat`` text, ``.npy``, ``.npz``,
         ``.h5``/``.hdf5``, ``.csv``).
@@ -143,7 +179,8 @@ def load_correlator(
         HDF5 only: path of the correlator dataset inside the file. Required
         when the file holds more than one dataset (besides ``ids_dataset``).
     ids_dataset : str, optional
-        HDF5 only: path of a 1-D integer dataset of configuration ids.
+        HDF5 only: path of a 1-D integer dataset of configuration ids. They
+        define the Monte Carlo order: rows are sorted by id.
     array : str, optional
         npz only: name of the array in the archive.
     part : {'real', 'imag'}
@@ -151,6 +188,10 @@ def load_correlator(
     where : str
         The spec key path the file came from (``observables.pion.file``), used
         to label errors; empty outside a spec.
+    max_text_bytes : int or None, default :data:`MAX_TEXT_BYTES` (2 GiB)
+        Largest text or CSV file read, in bytes (10^5 configurations x 256
+        timeslices is ~640 MB of text); None for no limit. Binary formats
+        are not limited.
 
     Returns
     -------
@@ -159,13 +200,17 @@ def load_correlator(
     Raises
     ------
     DataError
-        The file is missing, unreadable or malformed, the format is unknown,
-        the array is not 2-D or empty, or a value is NaN or infinite (the
-        message names the file, the configuration index -- and id when known --
-        and the timeslice).
+        The file is missing, vanished, unreadable (permissions), not a regular
+        file, empty, too large (text, CSV), wrongly encoded, truncated or
+        corrupt, the format is unknown, the array is not 2-D, empty or not
+        numeric, a value is NaN, infinite, above :data:`LARGEST_VALUE` or
+        subnormal, or a timeslice is too small to square (:data:`SMALLEST_SCALE`);
+        ids are not whole non-negative numbers below 2^53 or repeat. The
+        message names the file (and the configuration index, id and
+        timeslice where one value is at fault) and says what to do.
     """
     p = Path(path)
-    ctx = _Ctx(p, where)
+    ctx = FileContext(p, where)
     if part not in _PARTS:
         raise ctx.error(f"unknown part {part!r}; use one of {', '.join(_PARTS)}")
     fmt = format
@@ -186,26 +231,34 @@ def load_correlator(
         raise ctx.error(f"'ids_dataset' applies to hdf5 files only, but the format is {fmt}")
     if array is not None and fmt != "npz":
         raise ctx.error(f"'array' applies to npz files only, but the format is {fmt}")
-    if not p.exists():
-        raise ctx.error("file not found; check the path")
-    if p.is_dir():
-        raise ctx.error("is a directory, not a data file")
+    if fmt == "text" and part == "imag":
+        raise ctx.error("text files hold real numbers only; 'part: imag' needs complex data")
+    if max_text_bytes is not None and (not isinstance(max_text_bytes, (int, np.integer))
+                                       or max_text_bytes < 1):
+        raise ctx.error(f"max_text_bytes must be a positive number of bytes or None, "
+                        f"got {max_text_bytes!r}")
+
+    size = regular_file_size(p, ctx)  # stat only: special files are refused unopened
+    if size == 0:
+        raise ctx.error(f"the file is empty (0 bytes); expected {fmt} data: write it again")
 
     ids: np.ndarray | None = None
     streams: np.ndarray | None = None
+    names: dict[int, str] | None = None
+    file_rows: np.ndarray | None = None
     if fmt == "text":
-        if part == "imag":
-            raise ctx.error("text files hold real numbers only; 'part: imag' needs complex data")
-        values = _read_text(p, ctx)
+        values = _read_text(p, ctx, max_text_bytes)
     elif fmt == "npy":
-        values = _select_part(_read_npy(p, ctx), part, ctx)
+        values = _select_part(read_npy(p, ctx), part, ctx)
     elif fmt == "npz":
-        values = _select_part(_read_npz(p, array, ctx), part, ctx)
+        values = _select_part(read_npz(p, array, ctx), part, ctx)
     elif fmt == "hdf5":
-        data, ids = _read_hdf5(p, dataset, ids_dataset, ctx)
+        data, ids = read_hdf5(p, dataset, ids_dataset, ctx)
         values = _select_part(data, part, ctx)
     else:
-        values, ids, streams = _read_csv(p, part, ctx)
+        table = parse_long_csv(read_text(p, ctx, limit=max_text_bytes, what="CSV"), part, ctx)
+        values, ids, streams = table.values, table.config_ids, table.streams
+        names, file_rows = table.stream_names, table.file_rows
 
     values = _check_shape(values, ctx)
     if ids is not None and ids.shape[0] != values.shape[0]:
@@ -215,73 +268,125 @@ def load_correlator(
         )
     if ids is not None:
         _check_unique_ids(ids, streams, ctx)
+    if ids is not None and streams is None and np.any(np.diff(ids) < 0):
+        # HDF5: the ids define Monte Carlo order
+        file_rows = np.argsort(ids, kind="stable")
+        values, ids = values[file_rows], ids[file_rows]
     _check_finite(values, ids, ctx)
-    return RawCorrelator(values=values, config_ids=ids, streams=streams, source=p)
+    _check_magnitude(values, ids, ctx)
+    return RawCorrelator(values=values, config_ids=ids, streams=streams, source=p,
+                         stream_names=names, file_rows=file_rows)
 
 
 # --------------------------------------------------------------------------- checks
 
 
-def _check_shape(values: np.ndarray, ctx: _Ctx) -> np.ndarray:
+def _check_shape(values: np.ndarray, ctx: FileContext) -> np.ndarray:
+    values = np.asarray(values)
     if values.ndim != 2:
         raise ctx.error(
-            f"expected a 2-D array (configurations, timeslices), got shape {values.shape}"
+            f"expected a 2-D array (configurations, timeslices), got shape {values.shape}; "
+            "store one correlator as one 2-D array, a row per configuration"
         )
     if values.shape[0] == 0 or values.shape[1] == 0:
         raise ctx.error(f"no data: the array has shape {values.shape}")
     try:
-        out = np.ascontiguousarray(values, dtype=np.float64)
-    except (TypeError, ValueError) as exc:
-        raise ctx.error(f"values are not numbers ({exc})") from None
+        with np.errstate(over="ignore", invalid="ignore"):
+            out = np.ascontiguousarray(values, dtype=np.float64)
+    except (TypeError, ValueError, OverflowError) as exc:
+        raise ctx.error(f"values are not numbers ({exc}); store them as floating-point "
+                        "numbers") from None
     return out
 
 
-def _check_finite(values: np.ndarray, ids: np.ndarray | None, ctx: _Ctx) -> None:
+def _location(values: np.ndarray, ids: np.ndarray | None,
+              mask: np.ndarray) -> tuple[float, str, int]:
+    """The first flagged value, where it is (index, id, t), and how many are flagged."""
+    cfg, t = (int(i) for i in np.argwhere(mask)[0])
+    ident = f" (id {int(ids[cfg])})" if ids is not None else ""
+    return float(values[cfg, t]), f"configuration index {cfg}{ident}, t = {t}", int(mask.sum())
+
+
+def _check_finite(values: np.ndarray, ids: np.ndarray | None, ctx: FileContext) -> None:
     bad = ~np.isfinite(values)
     if not bad.any():
         return
-    cfg, t = (int(i) for i in np.argwhere(bad)[0])
-    what = "NaN" if math.isnan(values[cfg, t]) else "infinite"
-    ident = f" (id {int(ids[cfg])})" if ids is not None else ""
-    n_bad = int(bad.sum())
+    first, where, n_bad = _location(values, ids, bad)
+    what = "NaN" if math.isnan(first) else "infinite"
     more = f"; {n_bad} non-finite values in all" if n_bad > 1 else ""
     raise ctx.error(
-        f"{what} value at configuration index {cfg}{ident}, t = {t}{more}; "
-        "remove or repair the affected configurations"
+        f"{what} value at {where}{more}; remove or repair the affected configurations"
     )
 
 
-def _pair_codes(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """One int64 per (a, b) pair, ordered as the pairs sort (a first, then b)."""
-    _, a_inv = np.unique(a, return_inverse=True)
-    b_vals, b_inv = np.unique(b, return_inverse=True)
-    return a_inv.reshape(-1).astype(np.int64) * b_vals.size + b_inv.reshape(-1)
+def _check_magnitude(values: np.ndarray, ids: np.ndarray | None, ctx: FileContext) -> None:
+    magnitude = np.abs(values)
+    tiny_normal = np.finfo(np.float64).tiny
+    for mask, problem in (
+        (magnitude > LARGEST_VALUE,
+         f"is larger in magnitude than {LARGEST_VALUE:g}: its square overflows double "
+         "precision in means and covariances; divide every value of the correlator by one "
+         "constant (energies do not change), or check that the file holds what it should"),
+        ((magnitude > 0) & (magnitude < tiny_normal),
+         f"is subnormal (below {tiny_normal:.3g}) and has lost precision; such values usually "
+         "mean binary data read with the wrong type or byte order: check the file, or "
+         "multiply every value by one constant"),
+    ):
+        if mask.any():
+            first, where, n_bad = _location(values, ids, mask)
+            more = f" ({n_bad} such values)" if n_bad > 1 else ""
+            raise ctx.error(f"value {first:.3g} at {where}{more} {problem}")
+    scale = magnitude.max(axis=0)
+    tiny = (scale > 0) & (scale < SMALLEST_SCALE)
+    if tiny.any():
+        t = int(np.argmax(tiny))
+        raise ctx.error(
+            f"every value at t = {t} is below {SMALLEST_SCALE:g} in magnitude (largest "
+            f"{scale[t]:.3g}): the squares of its fluctuations underflow double precision, "
+            "so no variance can be computed; multiply every value of the correlator by one "
+            "constant (energies do not change)"
+        )
 
 
-def _check_unique_ids(ids: np.ndarray, streams: np.ndarray | None, ctx: _Ctx) -> None:
-    keys = ids if streams is None else _pair_codes(streams, ids)
+def _check_unique_ids(ids: np.ndarray, streams: np.ndarray | None, ctx: FileContext) -> None:
+    if streams is None:
+        keys = ids
+    else:
+        _, s_inv = np.unique(streams, return_inverse=True)
+        _, i_inv = np.unique(ids, return_inverse=True)
+        keys = s_inv.reshape(-1).astype(np.int64) * (int(i_inv.max()) + 1) + i_inv.reshape(-1)
     _, first, counts = np.unique(keys, return_index=True, return_counts=True)
     if (counts > 1).any():
         dup = int(ids[first[np.argmax(counts > 1)]])
-        raise ctx.error(f"configuration id {dup} appears more than once; ids must be unique")
+        n_dup = int((counts > 1).sum())
+        more = f" ({n_dup} ids repeat)" if n_dup > 1 else ""
+        raise ctx.error(f"configuration id {dup} appears more than once{more}; ids must be "
+                        "unique: remove the repeated configurations or fix the ids")
 
 
-def _select_part(data: np.ndarray, part: str, ctx: _Ctx) -> np.ndarray:
+def _select_part(data: np.ndarray, part: str, ctx: FileContext) -> np.ndarray:
     """Real or imaginary part of complex data (also compound (r, i) dtypes)."""
+    data = np.asarray(data)
     names = data.dtype.names
     if names is not None:
         if len(names) != 2 or not all(
-            np.issubdtype(data.dtype.fields[n][0], np.number) for n in names
+            np.issubdtype(data.dtype.fields[n][0], np.number)
+            and data.dtype.fields[n][0].shape == () for n in names
         ):
             raise ctx.error(
                 f"compound data type with fields {names}; expected two numeric fields "
-                "(real, imaginary)"
+                "(real, imaginary): store the correlator as real or complex numbers"
             )
-        return np.asarray(data[names[0] if part == "real" else names[1]], dtype=np.float64)
+        field = data[names[0] if part == "real" else names[1]]
+        if np.iscomplexobj(field):
+            raise ctx.error(f"compound data type with complex fields {names}; expected two "
+                            "real fields (real, imaginary)")
+        return np.asarray(field, dtype=np.float64)
     if np.iscomplexobj(data):
         return np.ascontiguousarray(data.real if part == "real" else data.imag)
-    if data.dtype.kind not in "biuf":
-        raise ctx.error(f"data type {data.dtype} is not numeric")
+    if data.dtype.kind not in "iuf":
+        raise ctx.error(f"data type {data.dtype} is not numeric; store the correlator as "
+                        "floating-point (or complex) numbers")
     if part == "imag":
         raise ctx.error("the data are real; 'part: imag' needs complex data")
     return data
@@ -290,331 +395,45 @@ def _select_part(data: np.ndarray, part: str, ctx: _Ctx) -> np.ndarray:
 # --------------------------------------------------------------------------- text
 
 
-def _read_text(p: Path, ctx: _Ctx) -> np.ndarray:
+def _read_text(p: Path, ctx: FileContext, limit: int | None) -> np.ndarray:
+    text = read_text(p, ctx, limit=limit, what="text").replace("\r\n", "\n").replace("\r", "\n")
     try:
         with warnings.catch_warnings():
-            warnings.simplefilter("ignore", UserWarning)  # "input contained no data"
-            values = np.loadtxt(p, comments="#", dtype=np.float64, ndmin=2,
-                                encoding="utf-8-sig")
-    except UnicodeDecodeError:
-        raise ctx.error("not a text file (cannot decode it as text); set the format") from None
-    except ValueError:
+            warnings.simplefilter("ignore")  # "input contained no data" and the like
+            values = np.loadtxt(text.split("\n"), comments="#", dtype=np.float64, ndmin=2)
+    except (ValueError, TypeError, OverflowError, IndexError):
         # The fast C parser counts only data rows; find the offending line.
-        raise _diagnose_text(p, ctx) from None
-    except OSError as exc:
-        raise ctx.error(f"cannot read the file ({exc.strerror or exc})") from None
+        raise _diagnose_text(text, ctx) from None
     if values.size == 0:
         raise ctx.error("no data: the file holds only comments or blank lines")
     return values
 
 
-def _diagnose_text(p: Path, ctx: _Ctx) -> DataError:
+def _diagnose_text(text: str, ctx: FileContext) -> DataError:
     n_cols: int | None = None
     first_line = 0
-    with open(p, encoding="utf-8-sig", errors="replace") as handle:
-        for lineno, line in enumerate(handle, start=1):
-            fields = line.split("#", 1)[0].split()
-            if not fields:
-                continue
-            for col, field in enumerate(fields, start=1):
-                try:
-                    float(field)
-                except ValueError:
-                    return ctx.error(
-                        f"line {lineno}, column {col}: cannot read {field!r} as a number"
-                    )
-            if n_cols is None:
-                n_cols, first_line = len(fields), lineno
-            elif len(fields) != n_cols:
-                return ctx.error(
-                    f"line {lineno} has {len(fields)} columns but line {first_line} has "
-                    f"{n_cols}; every row (configuration) needs one value per timeslice"
-                )
-    return ctx.error("cannot parse the file as whitespace-separated numbers")
-
-
-# --------------------------------------------------------------------------- npy / npz
-
-
-def _read_npy(p: Path, ctx: _Ctx) -> np.ndarray:
-    try:
-        data = np.load(p, allow_pickle=False)
-    except ValueError as exc:
-        raise ctx.error(f"cannot read it as a .npy array ({exc})") from None
-    except OSError as exc:
-        raise ctx.error(f"cannot read the file ({exc})") from None
-    if not isinstance(data, np.ndarray):
-        raise ctx.error("holds an npz archive, not a single array; set format: npz")
-    return data
-
-
-def _read_npz(p: Path, array: str | None, ctx: _Ctx) -> np.ndarray:
-    try:
-        archive = np.load(p, allow_pickle=False)
-    except (ValueError, OSError) as exc:
-        raise ctx.error(f"cannot read it as an .npz archive ({exc})") from None
-    if not isinstance(archive, np.lib.npyio.NpzFile):
-        raise ctx.error("holds a single array, not an npz archive; set format: npy")
-    with archive:
-        archive_names = list(archive.files)
-        if array is None:
-            if len(archive_names) != 1:
-                listed = ", ".join(archive_names) or "(none)"
-                raise ctx.error(
-                    f"the archive holds {len(archive_names)} arrays ({listed}); "
-                    "name the one to use with 'array'"
-                )
-            array = archive_names[0]
-        if array not in archive_names:
-            raise ctx.error(
-                f"no array {array!r} in the archive; it holds {', '.join(archive_names)}"
-            )
-        try:
-            return archive[array]
-        except ValueError as exc:
-            raise ctx.error(f"cannot read array {array!r} ({exc})") from None
-
-
-# --------------------------------------------------------------------------- hdf5
-
-
-def _read_hdf5(
-    p: Path, dataset: str | None, ids_dataset: str | None, ctx: _Ctx
-) -> tuple[np.ndarray, np.ndarray | None]:
-    import h5py
-
-    try:
-        handle = h5py.File(p, "r")
-    except OSError as exc:
-        raise ctx.error(f"cannot open it as an HDF5 file ({exc})") from None
-    with handle:
-        found: list[str] = []
-        handle.visititems(
-            lambda name, obj: found.append(name) if isinstance(obj, h5py.Dataset) else None
-        )
-        if dataset is None:
-            candidates = [n for n in found if n != (ids_dataset or "").strip("/")]
-            if len(candidates) != 1:
-                listed = ", ".join(found) or "(none)"
-                raise ctx.error(
-                    f"the file holds {len(candidates)} candidate datasets ({listed}); "
-                    "name the correlator with 'dataset'"
-                )
-            dataset = candidates[0]
-        data = _h5_dataset(handle, dataset, found, "dataset", ctx)
-        ids = None
-        if ids_dataset is not None:
-            raw_ids = _h5_dataset(handle, ids_dataset, found, "ids_dataset", ctx)
-            ids = _integer_ids(raw_ids, f"ids dataset {ids_dataset!r}", ctx)
-    return data, ids
-
-
-def _h5_dataset(handle, name: str, found: list[str], key: str, ctx: _Ctx) -> np.ndarray:
-    import h5py
-
-    obj = handle.get(name)
-    if obj is None or not isinstance(obj, h5py.Dataset):
-        listed = ", ".join(found) or "(none)"
-        raise ctx.error(f"no dataset {name!r} ('{key}') in the file; it holds {listed}")
-    try:
-        return obj[()]
-    except (OSError, TypeError, ValueError) as exc:
-        raise ctx.error(f"cannot read dataset {name!r} ({exc})") from None
-
-
-def _integer_ids(raw: np.ndarray, what: str, ctx: _Ctx) -> np.ndarray:
-    arr = np.asarray(raw)
-    if arr.ndim != 1:
-        raise ctx.error(f"{what} must be 1-D (one id per configuration), got shape {arr.shape}")
-    if arr.dtype.kind in "iu":
-        return arr.astype(np.int64)
-    if arr.dtype.kind == "f" and np.all(np.isfinite(arr)) and np.all(arr == np.round(arr)):
-        return arr.astype(np.int64)
-    raise ctx.error(f"{what} must hold whole numbers, got data type {arr.dtype}")
-
-
-# --------------------------------------------------------------------------- csv
-
-
-def _read_csv(
-    p: Path, part: str, ctx: _Ctx
-) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
-    try:
-        text = p.read_text(encoding="utf-8-sig")
-    except UnicodeDecodeError:
-        raise ctx.error("not a text file (cannot decode it as UTF-8)") from None
-    except OSError as exc:
-        raise ctx.error(f"cannot read the file ({exc.strerror or exc})") from None
-    lines = text.splitlines()
-    header_index = next(
-        (i for i, line in enumerate(lines) if line.strip() and not line.lstrip().startswith("#")),
-        None,
-    )
-    if header_index is None:
-        raise ctx.error("empty CSV file; expected a header line 'config,t,value'")
-    header = [h.strip().lower() for h in next(csv.reader([lines[header_index]]))]
-    missing = [c for c in _CSV_REQUIRED if c not in header]
-    unknown = [c for c in header if c not in _CSV_REQUIRED + _CSV_OPTIONAL]
-    if missing or unknown:
-        problems = []
-        if missing:
-            problems.append(f"missing column(s) {', '.join(missing)}")
-        if unknown:
-            problems.append(f"unknown column(s) {', '.join(unknown)}")
-        raise ctx.error(
-            f"line {header_index + 1}: header {','.join(header)!r}: {'; '.join(problems)}; "
-            f"the columns are config, t, value and optionally {', '.join(_CSV_OPTIONAL)}"
-        )
-    if len(set(header)) != len(header):
-        raise ctx.error(f"line {header_index + 1}: a column name appears twice in the header")
-    if part == "imag" and "imag" not in header:
-        raise ctx.error("'part: imag' needs an 'imag' column, but the header has none")
-    value_col = "value" if part == "real" else "imag"
-
-    body = "\n".join(lines[header_index + 1:])
-    columns = _csv_columns_fast(body, header)
-    if columns is None:
-        columns = _csv_columns_slow(lines, header_index, header, ctx)
-    cfg_raw, t_raw, val = columns["config"], columns["t"], columns[value_col]
-    if cfg_raw.size == 0:
-        raise ctx.error("no data rows after the header")
-    cfg = _whole(cfg_raw, "config", ctx, lines, header_index)
-    t = _whole(t_raw, "t", ctx, lines, header_index)
-    if (t < 0).any():
-        row = int(np.argmax(t < 0))
-        raise ctx.error(
-            f"line {_data_line(lines, header_index, row)}: negative timeslice t = {t[row]}; "
-            "timeslices count from 0"
-        )
-    streams_raw = columns.get("stream")
-    stream_codes = None if streams_raw is None else _stream_codes(streams_raw)
-    return _pivot(cfg, t, val, stream_codes, ctx, lambda row: _data_line(lines, header_index, row))
-
-
-def _csv_columns_fast(body: str, header: list[str]) -> dict[str, np.ndarray] | None:
-    """All-numeric CSV through numpy's C parser; None when that fails."""
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", UserWarning)
-            table = np.loadtxt(io.StringIO(body), delimiter=",", comments="#",
-                               dtype=np.float64, ndmin=2)
-    except ValueError:
-        return None
-    if table.size == 0:
-        return {name: np.empty(0) for name in header}
-    if table.shape[1] != len(header):
-        return None
-    return {name: table[:, i] for i, name in enumerate(header)}
-
-
-def _csv_columns_slow(
-    lines: list[str], header_index: int, header: list[str], ctx: _Ctx
-) -> dict[str, np.ndarray]:
-    """Line by line, for text stream labels and for exact error locations."""
-    cols: dict[str, list] = {name: [] for name in header}
-    numeric = [name for name in header if name != "stream"]
-    for lineno in range(header_index + 2, len(lines) + 1):
-        line = lines[lineno - 1]
-        if not line.strip() or line.lstrip().startswith("#"):
+    lines = text.split("\n")
+    for lineno, line in enumerate(lines, start=1):
+        fields = line.split("#", 1)[0].split()
+        if not fields:
             continue
-        fields = [f.strip() for f in next(csv.reader([line]))]
-        if len(fields) != len(header):
-            raise ctx.error(
-                f"line {lineno} has {len(fields)} fields but the header has {len(header)} "
-                f"({','.join(header)})"
+        last = lineno == len(lines)  # no newline after it: a cut-off file ends like this
+        cut = " (the last line looks cut off: is the file complete?)" if last else ""
+        for col, field in enumerate(fields, start=1):
+            try:
+                float(field)
+            except ValueError:
+                shown = field if len(field) <= 40 else field[:37] + "..."
+                return ctx.error(
+                    f"line {lineno}, column {col}: cannot read {shown!r} as a number{cut}; "
+                    "fix the value or remove the row"
+                )
+        if n_cols is None:
+            n_cols, first_line = len(fields), lineno
+        elif len(fields) != n_cols:
+            return ctx.error(
+                f"line {lineno} has {len(fields)} columns but line {first_line} has "
+                f"{n_cols}{cut}; every row (configuration) needs one value per timeslice"
             )
-        for name, field in zip(header, fields):
-            if name in numeric:
-                try:
-                    cols[name].append(float(field))
-                except ValueError:
-                    raise ctx.error(
-                        f"line {lineno}: cannot read {name} = {field!r} as a number"
-                    ) from None
-            else:
-                cols[name].append(field)
-    out: dict[str, np.ndarray] = {n: np.asarray(cols[n], dtype=np.float64) for n in numeric}
-    if "stream" in header:
-        labels = cols["stream"]
-        try:
-            out["stream"] = np.asarray([float(s) for s in labels], dtype=np.float64)
-        except ValueError:
-            out["stream"] = np.asarray(labels, dtype=object)
-    return out
-
-
-def _data_line(lines: list[str], header_index: int, row: int) -> int:
-    """1-based line number of data row ``row`` (0-based; comments and blanks skipped)."""
-    seen = -1
-    for lineno in range(header_index + 2, len(lines) + 1):
-        line = lines[lineno - 1]
-        if line.strip() and not line.lstrip().startswith("#"):
-            seen += 1
-            if seen == row:
-                return lineno
-    return len(lines)
-
-
-def _whole(x: np.ndarray, name: str, ctx: _Ctx, lines: list[str], header_index: int) -> np.ndarray:
-    bad = ~np.isfinite(x) | (x != np.round(x))
-    if bad.any():
-        row = int(np.argmax(bad))
-        raise ctx.error(
-            f"line {_data_line(lines, header_index, row)}: {name} = {x[row]:g} is not a "
-            "whole number"
-        )
-    return x.astype(np.int64)
-
-
-def _stream_codes(raw: np.ndarray) -> np.ndarray:
-    if raw.dtype != object:
-        if np.all(np.isfinite(raw)) and np.all(raw == np.round(raw)):
-            return raw.astype(np.int64)
-        raw = raw.astype(str).astype(object)
-    labels = np.asarray([str(s) for s in raw])
-    _, codes = np.unique(labels, return_inverse=True)
-    return codes.astype(np.int64)
-
-
-def _pivot(
-    cfg: np.ndarray,
-    t: np.ndarray,
-    val: np.ndarray,
-    streams: np.ndarray | None,
-    ctx: _Ctx,
-    line_of,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray | None]:
-    stream_key = np.zeros_like(cfg) if streams is None else streams
-    # rows sorted by (stream, config)
-    codes, first_row, row_of = np.unique(_pair_codes(stream_key, cfg), return_index=True,
-                                         return_inverse=True)
-    row_of = row_of.reshape(-1)
-    uniq = np.stack([stream_key[first_row], cfg[first_row]], axis=1)
-    n_t = int(t.max()) + 1
-    n_cfg = uniq.shape[0]
-    flat = row_of * n_t + t
-    counts = np.bincount(flat, minlength=n_cfg * n_t)
-    if (counts > 1).any():
-        cell = int(np.argmax(counts > 1))
-        r, tt = divmod(cell, n_t)
-        rows = [line_of(int(i)) for i in np.nonzero(flat == cell)[0][:2]]
-        in_stream = f" in stream {uniq[r, 0]}" if streams is not None else ""
-        raise ctx.error(
-            f"config {uniq[r, 1]}{in_stream}, t = {tt} appears more than once "
-            f"(lines {rows[0]} and {rows[1]}); each (config, t) must appear once"
-        )
-    if (counts == 0).any():
-        cell = int(np.argmax(counts == 0))
-        r, tt = divmod(cell, n_t)
-        in_stream = f" in stream {uniq[r, 0]}" if streams is not None else ""
-        n_missing = int((counts == 0).sum())
-        more = f"; {n_missing} (config, t) pairs are missing in all" if n_missing > 1 else ""
-        raise ctx.error(
-            f"no value for config {uniq[r, 1]}{in_stream}, t = {tt} (the file has t = 0..{n_t - 1})"
-            f"{more}; every configuration needs every timeslice"
-        )
-    values = np.empty(n_cfg * n_t, dtype=np.float64)
-    values[flat] = val
-    ids = uniq[:, 1].astype(np.int64)
-    out_streams = None if streams is None else uniq[:, 0].astype(np.int64)
-    return values.reshape(n_cfg, n_t), ids, out_streams
+    return ctx.error("cannot parse the file as whitespace-separated numbers, one row per "
+                     "configuration; check the format")

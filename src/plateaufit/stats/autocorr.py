@@ -67,9 +67,10 @@ class TauIntResult:
     Attributes
     ----------
     tau : float
-        ``1/2 + sum_{t=1}^{W} rho(t)`` at the chosen window.
+        ``1/2 + sum_{t=1}^{W} rho(t)`` at the chosen window; always positive,
+        or NaN when the series is too short to estimate it (see ``tau_int``).
     error : float
-        Madras-Sokal error of ``tau``.
+        Madras-Sokal error of ``tau``; never negative, NaN with ``tau``.
     window : int
         The window ``W`` chosen by the automatic criterion (parameter ``S``).
     rho : ndarray
@@ -82,10 +83,12 @@ class TauIntResult:
     reliable : bool
         False when no window was found before the chain ran out, or the chain
         is shorter than ``min_length * tau``: then ``tau`` is a lower bound.
+        Also False when ``tau`` is NaN.
     value : float or None
         The mean (``tau_int``) or the derived quantity (``tau_int_derived``).
     value_error : float or None
-        Its error including autocorrelations, ``sqrt(2 tau Gamma(0) / N)``.
+        Its error including autocorrelations, ``sqrt(2 tau Gamma(0) / N)``;
+        NaN when ``tau`` is.
     """
 
     tau: float
@@ -171,6 +174,9 @@ def _gamma_analysis(
 ) -> tuple[TauIntResult, float]:
     """Gamma-method analysis of a 1-d series; returns the result and Gamma(0)."""
     n = x.shape[0]
+    if n < 2:
+        raise DataError("series", f"tau_int needs at least 2 measurements, got {n}; "
+                        "an autocorrelation (and an error of the mean) needs a chain")
     blocks = stream_blocks(streams, n)
     mean = float(x.mean())
     dev = x - mean
@@ -212,6 +218,27 @@ def _gamma_analysis(
         # C_F = Gamma(0) + 2 sum_{t=1}^{W} Gamma(t) at the chosen window.
         gam = gam + cf / n
         cf = gam[0] + 2.0 * gam[1 : window + 1].sum()
+    if not (cf > 0.0 and gam[0] > 0.0):
+        # The estimated variance of the mean is not positive: the negative
+        # autocovariances of a very short (or strictly alternating) series
+        # outweigh Gamma(0). Always so for N = 2 (Gamma(1) = -Gamma(0)); the
+        # Gamma method has no estimate here, and a negative tau would be nonsense.
+        warnings.warn(
+            f"the series ({n} measurements in {len(blocks)} stream(s)) is too short, or too "
+            "strongly anticorrelated, to estimate tau_int: the estimated variance of the mean "
+            "is not positive; tau_int is NaN",
+            ShortChainWarning,
+            stacklevel=stacklevel,
+        )
+        keep = min(max_lag, max(2 * window, 20)) + 1
+        with np.errstate(divide="ignore", invalid="ignore"):
+            rho = (gam / gam[0])[:keep].copy() if gam[0] > 0 else np.full(keep, np.nan)
+        res = TauIntResult(
+            tau=math.nan, error=math.nan, window=int(window), rho=rho,
+            tau_by_window=0.5 + np.concatenate(([0.0], np.cumsum(rho[1:]))), n=n,
+            reliable=False, value=mean, value_error=math.nan,
+        )
+        return res, float(gam[0])
     rho = gam / gam[0]
     tau = float(cf / (2.0 * gam[0]))
     # Madras-Sokal approximation in the form Wolff 2004 uses (from memory):
@@ -284,12 +311,17 @@ def tau_int(
         ``value`` and ``value_error`` hold the mean and its error
         ``sqrt(2 tau Gamma(0) / N)``.
 
+    Raises
+    ------
+    DataError
+        Fewer than 2 measurements (``where="series"``), NaN or inf in the series.
+
     Warns
     -----
     ShortChainWarning
         When no window is found before the largest usable lag (``tau`` is then
         the value at that lag, a lower bound) or the chain is shorter than
-        ``min_length * tau``; ``reliable`` is False.
+        ``min_length * tau``; ``reliable`` is False. Also when ``tau`` is NaN.
 
     Notes
     -----
@@ -298,6 +330,16 @@ def tau_int(
     reference implementation). A constant series has no fluctuation: the
     result is ``tau = 0.5``, ``error = 0``, ``window = 0``, ``reliable = True``
     and ``value_error = 0`` (the variance of the mean is exactly zero).
+
+    Too short to estimate: when the estimated variance of the mean,
+    ``C_F = Gamma(0) + 2 sum_{t=1}^{W} Gamma(t)`` (after the bias correction),
+    is not positive, the result has ``tau``, ``error`` and ``value_error`` NaN
+    and ``reliable = False``, with a ``ShortChainWarning``; ``value`` is still
+    the mean. This is always the case for 2 measurements (then
+    ``Gamma(1) = -Gamma(0)``), often for 3 (never for 3 in monotone order),
+    and for a strictly alternating series of any length. ``tau``
+    is therefore never zero or negative, and ``error`` never negative. A single
+    measurement is an error: there is no chain to speak of.
 
     References
     ----------
