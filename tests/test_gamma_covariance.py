@@ -8,7 +8,7 @@ from scipy.signal import lfilter
 
 from plateaufit.errors import DataError, FitError, SpecError
 from plateaufit.stats import GammaCovariance, ShortChainWarning, gamma_covariance
-from plateaufit.stats.gamma_covariance import common_window, lagged_covariances
+from plateaufit.stats.autocov_matrix import common_window, lagged_covariances
 
 
 def correlated_chain(n: int, p: int, phi: float, seed: int, rho: float = 0.6) -> np.ndarray:
