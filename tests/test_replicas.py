@@ -145,6 +145,13 @@ def test_bad_input_names_the_argument(kwargs, where, exc):
     assert err.value.where == where
 
 
+@pytest.mark.parametrize("method", REPLICA_METHODS)
+def test_short_chain_is_flagged(method):
+    x = chain(60, 2, 0.97, seed=11)
+    assert not fit_replica_model(x, method=method).reliable
+    assert fit_replica_model(chain(3000, 2, 0.5, seed=12), method=method).reliable
+
+
 def test_bad_data_and_seeds():
     x = chain(300, 4, 0.5, seed=10)
     bad = x.copy()

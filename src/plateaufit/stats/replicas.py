@@ -33,7 +33,8 @@ Default method: ``"ar1-factors"``
    back: ``noise = f V^{-1}``.
 
 Then the replicas' ``Gamma(0)`` and long-run covariance equal the estimated
-ones exactly (in expectation over replicas), so tau_int of every component
+ones exactly (in expectation over replicas; unless factors were clipped,
+``ReplicaModel.n_clipped``, which only raises the long-run variance), so tau_int of every component
 *and of every linear combination* (the projections a fit makes) is
 reproduced, not only approximately.
 
@@ -111,6 +112,7 @@ from scipy.signal import lfilter
 from plateaufit.errors import DataError, SpecError
 from plateaufit.stats.autocorr import _check_s
 from plateaufit.stats.autocov_matrix import (
+    CommonWindow,
     _fluctuating,
     check_data,
     check_streams,
@@ -174,6 +176,10 @@ class ReplicaModel:
         Deviations from the stream means (bootstrap).
     block_length : float
         Mean block length (bootstrap; 0 otherwise).
+    reliable : bool
+        False when the data's most autocorrelated component has a tau_int that
+        is only a lower bound (chain too short): the replicas then have too
+        little autocorrelation.
     """
 
     method: str
@@ -190,6 +196,7 @@ class ReplicaModel:
     phi: np.ndarray
     residuals: np.ndarray | None = None
     block_length: float = 0.0
+    reliable: bool = True
 
     @property
     def n_configs(self) -> int:
@@ -420,7 +427,7 @@ def fit_replica_model(
     tau_max = max(float(taus.max()), 0.5)
 
     if method == "stationary-bootstrap":
-        return _bootstrap_model(x, mu, blocks, sizes, cw.window, taus, lra, cols, tau_max, block_length)
+        return _bootstrap_model(x, mu, blocks, sizes, cw, taus, lra, cols, tau_max, block_length)
 
     lam = shrinkage_intensity(xa, streams, tau_max, shrinkage, "diagonal")
     if lam > 0:
@@ -443,6 +450,7 @@ def fit_replica_model(
         n_clipped=n_clipped,
         mixing=mixing,
         phi=phi,
+        reliable=cw.reliable,
     )
 
 
@@ -480,7 +488,7 @@ def _bootstrap_model(
     mu: np.ndarray,
     blocks: list[tuple[int, int]],
     sizes: tuple[int, ...],
-    window: int,
+    cw: CommonWindow,
     taus: np.ndarray,
     long_run_active: np.ndarray,
     cols: np.ndarray,
@@ -505,7 +513,7 @@ def _bootstrap_model(
         method="stationary-bootstrap",
         truth=mu,
         stream_sizes=sizes,
-        window=int(window),
+        window=int(cw.window),
         taus=taus,
         covariance=res.T @ res / n,
         long_run=long_run,
@@ -516,4 +524,5 @@ def _bootstrap_model(
         phi=np.zeros(0),
         residuals=res,
         block_length=max(length, 1.0),
+        reliable=cw.reliable,
     )
