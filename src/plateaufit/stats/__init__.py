@@ -1,4 +1,5 @@
-"""Statistical core: autocorrelation, resampling, covariance of the mean, effective masses.
+"""Statistical core: autocorrelation, resampling, covariance of the mean, effective masses,
+synthetic replicas.
 
 numpy arrays in, numpy arrays and small frozen dataclasses out; nothing here
 knows about specification files.
@@ -22,6 +23,9 @@ from plateaufit.stats.covariance import (
     oas_intensity,
     per_sample_covariances,
 )
+from plateaufit.stats.autocov_matrix import CommonWindow, common_window
+from plateaufit.stats.gamma_covariance import GammaCovariance, GammaCovarianceResult, gamma_covariance
+from plateaufit.stats.replicas import REPLICA_METHODS, ReplicaModel, fit_replica_model, stream_labels
 from plateaufit.stats.effmass import EffectiveMass, effective_mass, effective_mass_jackknife
 from plateaufit.stats.resample import (
     bin_samples,
@@ -57,6 +61,15 @@ __all__ = [
     "ledoit_wolf_intensity",
     "oas_intensity",
     "per_sample_covariances",
+    "GammaCovarianceResult",
+    "GammaCovariance",
+    "gamma_covariance",
+    "CommonWindow",
+    "common_window",
+    "REPLICA_METHODS",
+    "ReplicaModel",
+    "fit_replica_model",
+    "stream_labels",
     "EffectiveMass",
     "effective_mass",
     "effective_mass_jackknife",
