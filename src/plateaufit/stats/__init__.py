@@ -1,4 +1,4 @@
-"""Statistical core: autocorrelation, resampling, covariance of the mean, effective masses.
+"""Statistical core: autocorrelation, resampling, covariance of the mean, effective masses, GEVP.
 
 numpy arrays in, numpy arrays and small frozen dataclasses out; nothing here
 knows about specification files.
@@ -23,6 +23,14 @@ from plateaufit.stats.covariance import (
     per_sample_covariances,
 )
 from plateaufit.stats.effmass import EffectiveMass, effective_mass, effective_mass_jackknife
+from plateaufit.stats.gevp import GevpResult, asymmetry_significance, solve_gevp, symmetrise
+from plateaufit.stats.principal import (
+    Overlaps,
+    PrincipalEffectiveEnergy,
+    half_t0_effective_energy,
+    overlaps,
+    principal_effective_energy,
+)
 from plateaufit.stats.resample import (
     bin_samples,
     bin_streams,
@@ -60,4 +68,13 @@ __all__ = [
     "EffectiveMass",
     "effective_mass",
     "effective_mass_jackknife",
+    "symmetrise",
+    "asymmetry_significance",
+    "GevpResult",
+    "solve_gevp",
+    "PrincipalEffectiveEnergy",
+    "principal_effective_energy",
+    "half_t0_effective_energy",
+    "Overlaps",
+    "overlaps",
 ]
