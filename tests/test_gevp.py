@@ -324,3 +324,25 @@ def test_bad_arguments_of_the_effective_energies_and_overlaps():
         overlaps(res, e, np.tile(e, (4, 1)), t=4, form="cosh")
     with pytest.raises(SpecError):
         overlaps(res, e, np.tile(e, (4, 1)), t=4, form="linear")
+
+
+def test_operator_normalisations_far_apart_change_nothing_but_the_overlaps():
+    """Operators normalised 1e-6 .. 1e6 apart (C -> D C D): the GEVP is invariant, the
+    eigenvalues and their errors are the same, the overlaps scale with D."""
+    rng = np.random.default_rng(14)
+    n_t, n_bins = 14, 12
+    e = np.array([0.3, 0.6, 0.9])
+    c = spectral_matrix(BASIS, np.exp(-np.outer(e, np.arange(n_t))))
+    z = rng.standard_normal((n_bins, 3, 3, n_t))
+    bins = c[None] * (1 + 0.01 * 0.5 * (z + np.swapaxes(z, 1, 2)))
+    d = np.array([1e-6, 1.0, 1e6])
+    scaled = bins * d[:, None, None] * d[None, :, None]
+    plain = solve_gevp(bins.mean(0), jackknife_samples(bins), 2)
+    wide = solve_gevp(scaled.mean(0), jackknife_samples(scaled), 2)
+    np.testing.assert_allclose(wide.eigenvalues, plain.eigenvalues, rtol=1e-9)
+    np.testing.assert_allclose(wide.eigenvalue_errors, plain.eigenvalue_errors, rtol=1e-6)
+    np.testing.assert_array_equal(wide.crossings, plain.crossings)
+    es = np.tile(e, (n_bins, 1))
+    zp = overlaps(plain, e, es, t=5)
+    zw = overlaps(wide, e, es, t=5)
+    np.testing.assert_allclose(np.abs(zw.value), np.abs(zp.value) * d[:, None], rtol=1e-8)

@@ -42,11 +42,21 @@ At ``t = t0`` every vector is an eigenvector (all ``lambda_n(t0, t0) = 1``), so
 the vectors of ``t0 + 1`` are stored there.
 
 A *crossing* is a jackknife sample whose assigned levels, at some ``t``, are
-not in the central's eigenvalue order (ascending before ``t0``, where
-``lambda_n(t, t0) = exp(E_n (t0 - t))`` grows with the energy; descending after): ``crossings[n, t]`` counts the samples
-in which level ``n`` has another eigenvalue rank than in the central. Many
-crossings mean the assignment of that level at that ``t`` is not stable under
-the jackknife, and the principal correlator should not be fitted there.
+not in the central's eigenvalue order (descending after ``t0``; ascending
+before it, where ``lambda_n(t, t0) = exp(E_n (t0 - t))`` grows with the
+energy): ``crossings[n, t]`` counts the samples in which level ``n`` has
+another eigenvalue rank than in the central. Crossings mean the assignment of
+that level at that ``t`` is not stable under the jackknife, and the principal
+correlator should not be fitted there. Their absence proves little: the
+samples share most of their data with the central matrix, so even two
+degenerate levels rarely swap in them; ``level_separation`` (the gap between
+neighbouring levels in jackknife errors) is the measure of whether the data
+tell two levels apart.
+
+This module is a little over 500 lines because the solver, the level
+assignment and the input checks are one algorithm whose pieces are shared
+with :mod:`plateaufit.stats.principal` (which solves the ``t0 = ceil(t/2)``
+variant with them); most of its length is documentation.
 
 References
 ----------
@@ -221,7 +231,8 @@ class GevpResult:
 # input checks
 # ---------------------------------------------------------------------------
 
-def check_matrices(matrix: np.ndarray, matrix_samples: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def _check_matrices(matrix: np.ndarray,
+                    matrix_samples: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Validate a central correlator matrix and its jackknife samples.
 
     Returns both as float arrays; raises :class:`DataError` naming the argument.
@@ -253,7 +264,7 @@ def check_matrices(matrix: np.ndarray, matrix_samples: np.ndarray) -> tuple[np.n
     return c, cs
 
 
-def check_t0(t0: object, n_t: int) -> int:
+def _check_t0(t0: object, n_t: int) -> int:
     """``t0`` as an int in ``0 .. n_t - 2`` (a level is named at ``t0 + 1``)."""
     if isinstance(t0, (bool, np.bool_)) or not isinstance(t0, (int, np.integer)):
         raise SpecError("t0", f"t0 must be an integer timeslice, got {t0!r}")
@@ -466,9 +477,9 @@ def solve_gevp(matrix: np.ndarray, matrix_samples: np.ndarray, t0: int) -> GevpR
     .. [2] M. Lüscher, U. Wolff, Nucl. Phys. B 339 (1990) 222.
     .. [3] C. Michael, Nucl. Phys. B 259 (1985) 58.
     """
-    c_raw, cs_raw = check_matrices(matrix, matrix_samples)
+    c_raw, cs_raw = _check_matrices(matrix, matrix_samples)
     r, _, n_t = c_raw.shape
-    t0 = check_t0(t0, n_t)
+    t0 = _check_t0(t0, n_t)
     asym = asymmetry_significance(c_raw, cs_raw)
     c, cs = symmetrise(c_raw), symmetrise(cs_raw)
 
