@@ -1,5 +1,5 @@
 """Statistical core: autocorrelation, resampling, covariance of the mean, effective masses,
-synthetic replicas.
+the variational method (GEVP), synthetic replicas.
 
 numpy arrays in, numpy arrays and small frozen dataclasses out; nothing here
 knows about specification files.
@@ -27,6 +27,14 @@ from plateaufit.stats.autocov_matrix import CommonWindow, common_window
 from plateaufit.stats.gamma_covariance import GammaCovariance, GammaCovarianceResult, gamma_covariance
 from plateaufit.stats.replicas import REPLICA_METHODS, ReplicaModel, fit_replica_model, stream_labels
 from plateaufit.stats.effmass import EffectiveMass, effective_mass, effective_mass_jackknife
+from plateaufit.stats.gevp import GevpResult, asymmetry_significance, solve_gevp, symmetrise
+from plateaufit.stats.principal import (
+    Overlaps,
+    PrincipalEffectiveEnergy,
+    half_t0_effective_energy,
+    overlaps,
+    principal_effective_energy,
+)
 from plateaufit.stats.resample import (
     bin_samples,
     bin_streams,
@@ -73,4 +81,13 @@ __all__ = [
     "EffectiveMass",
     "effective_mass",
     "effective_mass_jackknife",
+    "symmetrise",
+    "asymmetry_significance",
+    "GevpResult",
+    "solve_gevp",
+    "PrincipalEffectiveEnergy",
+    "principal_effective_energy",
+    "half_t0_effective_energy",
+    "Overlaps",
+    "overlaps",
 ]
