@@ -113,3 +113,82 @@ def test_single_fit_stat_error_is_astropy_jackknife_error():
     _, _, std_err, _ = jackknife_stats(data, np.mean)  # source: astropy.stats.jackknife_stats
     assert math.isclose(avg.stat_error["E0"], std_err, rel_tol=1e-10)
     assert avg.sys_error["E0"] == 0.0
+
+
+def _fake_fit(e0, aic, samples, flags=(), converged=True):
+    """A scan point as average_fits sees it (reported E0 only)."""
+    from types import SimpleNamespace
+
+    from plateaufit.fit.diagnostics import Flag, is_degenerate
+
+    flags = tuple(Flag(code, code) for code in flags)
+    return SimpleNamespace(model=SimpleNamespace(physical_names=("E0",)),
+                           central=SimpleNamespace(physical={"E0": e0}, aic=aic),
+                           samples=np.asarray(samples, float)[:, None], converged=converged,
+                           flags=flags, degenerate=is_degenerate(flags), undetermined=set())
+
+
+def _jk(x):
+    x = np.asarray(x, float)
+    return math.sqrt((x.size - 1) / x.size * np.sum((x - x.mean()) ** 2))
+
+
+def test_average_error_against_jay_neil_by_hand_on_a_constructed_scan():
+    # Three fits sharing S = 4 jackknife samples: two move together, one against.
+    # Hand computation with weights from AIC = 0, 1, 2.
+    from plateaufit.fit.average import average_fits
+
+    z = np.array([-1.5, -0.5, 0.5, 1.5]) * 1e-4
+    fits = [_fake_fit(0.300, 0.0, 0.300 + z), _fake_fit(0.301, 1.0, 0.301 + 2 * z),
+            _fake_fit(0.299, 2.0, 0.299 - z)]
+    avg = average_fits(fits)
+    w = np.exp(-0.5 * np.array([0.0, 1.0, 2.0]))
+    w /= w.sum()
+    np.testing.assert_allclose(avg.weights, w, rtol=1e-12)
+    # fixed central weights: averaged samples = value + (w0 + 2 w1 - w2) z
+    stat_hand = abs(w[0] + 2 * w[1] - w[2]) * _jk(z)
+    assert math.isclose(avg.stat_error["E0"], stat_hand, rel_tol=1e-10)
+    # source: Jay & Neil (2021), stat^2 <= sum_M sigma_M^2 pr(M|D); and the
+    # triangle inequality stat <= sum_M pr(M|D) sigma_M
+    sigma = np.array([_jk(z), 2 * _jk(z), _jk(z)])
+    assert avg.stat_error["E0"] <= w @ sigma <= math.sqrt(w @ sigma ** 2)
+    # source: Jay & Neil (2021), the spread term
+    mean = w @ [0.300, 0.301, 0.299]
+    assert math.isclose(avg.sys_error["E0"], math.sqrt(w @ (np.array([0.300, 0.301, 0.299])
+                                                           - mean) ** 2), rel_tol=1e-9)
+
+
+def test_wild_refits_of_a_degenerate_point_do_not_move_the_average():
+    from plateaufit.fit.average import average_fits
+
+    rng = np.random.default_rng(3)
+    z = rng.standard_normal(200) * 1e-5
+    good = [_fake_fit(0.300, 0.0, 0.300 + z), _fake_fit(0.3001, 0.5, 0.3001 + 1.2 * z)]
+    # a point whose refits wander between two minima, with the lowest AIC of all
+    wild = 0.300 + np.where(rng.random(200) < 0.5, 0.0, 0.08)
+    base = average_fits(good)
+    flagged = average_fits(good + [_fake_fit(0.3, -5.0, wild, flags=("refits-wide",))])
+    assert flagged.weights[2] == 0.0 and flagged.n_excluded == 1
+    assert flagged.stat_error["E0"] == base.stat_error["E0"]
+    assert flagged.value["E0"] == base.value["E0"]
+
+
+def test_a_tiny_weight_point_moves_the_error_by_at_most_its_weight_times_its_error():
+    # Fixed weights make the jackknife error a seminorm of the averaged samples:
+    # |stat(with) - stat(without, renormalised)| is bounded by what the weights
+    # and errors allow (triangle inequality), however wild the point is.
+    from plateaufit.fit.average import average_fits
+
+    rng = np.random.default_rng(4)
+    z = rng.standard_normal(200) * 1e-5
+    good = [_fake_fit(0.300, 0.0, 0.300 + z), _fake_fit(0.3001, 0.5, 0.3001 + 1.2 * z)]
+    wild = 0.300 + rng.standard_normal(200) * 0.01          # error 1000x the others
+    avg = average_fits(good + [_fake_fit(0.300, 20.0, wild)])
+    w = avg.weights
+    assert 0 < w[2] < 1e-4
+    sigma = np.array([_jk(0.3 + z), _jk(1.2 * z), _jk(wild)])
+    assert avg.stat_error["E0"] <= w @ sigma * (1 + 1e-12)
+    without = average_fits(good)
+    # the averaged samples differ by w2 (wild - rest); its jackknife error bounds the change
+    assert abs(avg.stat_error["E0"] - (1 - w[2]) * without.stat_error["E0"]) <= \
+        w[2] * sigma[2] * (1 + 1e-9) + 1e-18

@@ -197,13 +197,15 @@ def refit_range(problem: RangeProblem, central: CentralFit) -> CorrelatorFit:
     n_failed = int(np.count_nonzero(~good))
     names = tuple(model.physical_names)
     errors = dict(zip(names, err.tolist()))
+    signals = state_signals(model, central.theta, refits.theta[good]) if good.sum() >= 2 \
+        else None
     flags = diagnose(names=names, states=model.states, values=central.physical,
                      errors=errors, curvature_errors=central.errors, samples=samples,
                      converged=central.converged, central_message=central.message,
                      at_bound=central.at_bound, n_refit_failed=n_failed,
                      n_samples=samples.shape[0], priors=problem.priors,
                      effective_masses=problem.effective_masses,
-                     oscillating=model.oscillating)
+                     oscillating=model.oscillating, state_signals=signals)
     return CorrelatorFit(
         model=model, tmin=problem.tmin, tmax=problem.tmax, states=problem.states,
         form=problem.form, central=central, samples=samples, errors=errors,
@@ -212,6 +214,39 @@ def refit_range(problem: RangeProblem, central: CentralFit) -> CorrelatorFit:
         n_refit_failed=n_failed, param_covariance=pcov, n_fallback=refits.n_fallback,
         engine=refits.engine, observables=problem.observables, n_bins=problem.n_bins,
         per_sample=problem.per_sample, flags=flags)
+
+
+def state_signals(model: CorrelatorModel, theta: np.ndarray, theta_samples: np.ndarray
+                  ) -> dict[int, list[tuple[float, float]]]:
+    """Each excited state's contribution to the model at each observable's first
+    timeslice, with its jackknife error over the refits.
+
+    The model is evaluated with every amplitude but those of state ``n`` set
+    to zero, so whatever the form (plain or factorised amplitudes) the number
+    is what the state adds to the prediction.
+    """
+    if model.form == "formula" or model.states < 2:
+        return {}
+    layout = model.layout
+    amp = layout.internal["amplitudes"]
+    n_labels = len(model.amplitude_labels)
+    first = [sl.start for sl in model.point_slices().values()]
+    out: dict[int, list[tuple[float, float]]] = {}
+    for n in range(1, model.states):
+        keep = np.zeros(model.n_params, dtype=bool)
+        keep[: amp.start] = True             # energies
+        start = amp.start + n * n_labels
+        keep[start:start + n_labels] = True  # this state's amplitudes
+        keep[layout.internal["oscillating_amplitudes"]] = False
+        keep[layout.internal["constants"]] = False
+        keep[layout.internal["oscillating_energies"]] = True
+        with np.errstate(all="ignore"):
+            c = model.predict(np.where(keep, theta, 0.0))[first]
+            cs = model.predict(np.where(keep, theta_samples, 0.0))[:, first]
+        m = cs.shape[0]
+        err = np.sqrt((m - 1) / m * np.sum((cs - cs.mean(axis=0)) ** 2, axis=0))
+        out[n] = [(float(a), float(b)) for a, b in zip(c, err)]
+    return out
 
 
 def fit_correlator(binned, *, form: str, states: int, tmin: int, tmax: int,

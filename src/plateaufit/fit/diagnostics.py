@@ -161,7 +161,9 @@ def diagnose(*, names: Sequence[str], states: int, values: Mapping[str, float],
              n_refit_failed: int = 0, n_samples: int = 0,
              priors: Mapping[str, Any] | None = None,
              effective_masses: Sequence[tuple[np.ndarray, np.ndarray]] = (),
-             oscillating: int = 0) -> tuple[Flag, ...]:
+             oscillating: int = 0,
+             state_signals: Mapping[int, Sequence[tuple[float, float]]] | None = None
+             ) -> tuple[Flag, ...]:
     """All flags of one fit.
 
     Parameters
@@ -193,6 +195,13 @@ def diagnose(*, names: Sequence[str], states: int, values: Mapping[str, float],
         with oscillating states).
     oscillating : int
         Number of oscillating states.
+    state_signals : mapping, optional
+        State ``n`` -> per observable ``(contribution, jackknife error)`` of that
+        state to the model at the fit's first timeslice. A state whose
+        contribution is compatible with zero in every observable is
+        unresolved even when its amplitude is not (an energy run off to large
+        values with the amplitude following, so that nothing of the state
+        reaches the data).
 
     Returns
     -------
@@ -217,12 +226,22 @@ def diagnose(*, names: Sequence[str], states: int, values: Mapping[str, float],
         # excited states whose amplitudes are all compatible with zero
         for n in range(1, states):
             amps = _state_names(names, n)
+            params = (f"E{n}", *amps)
+            reason = ""
             if _compatible_with_zero(values, errors, amps):
-                params = (f"E{n}", *amps)
+                reason = (f"every amplitude of state {n} is compatible with zero "
+                          f"({_show(values, errors, amps)})")
+            elif state_signals and n in state_signals and state_signals[n] and all(
+                    np.isfinite(c) and np.isfinite(e) and abs(c) <= ZERO_SIGMAS * e
+                    for c, e in state_signals[n]):
+                shown = ", ".join(f"{c:.3g} +- {e:.2g}" for c, e in state_signals[n])
+                reason = (f"state {n} contributes nothing measurable at the first timeslice "
+                          f"({shown})")
+            elif not all(np.isfinite(curvature_errors.get(name, np.nan)) for name in params):
+                reason = f"the data do not constrain state {n} (singular curvature)"
+            if reason:
                 undetermined.update(params)
-                flags.append(Flag("state-unresolved",
-                                  f"every amplitude of state {n} is compatible with zero "
-                                  f"({_show(values, errors, amps)}); E{n} is not determined",
+                flags.append(Flag("state-unresolved", f"{reason}; E{n} is not determined",
                                   params))
         # the ground state
         amps0 = _state_names(names, 0)
