@@ -38,6 +38,9 @@ from plateaufit.fit.refits import jackknife_refits
 from plateaufit.stats import covariance as covmod
 from plateaufit.stats.resample import jackknife_covariance, jackknife_error, jackknife_samples
 
+#: Iteration budget of the refits of a fit already degenerate by its central fit.
+DEGENERATE_REFIT_ITERATIONS = 30
+
 __all__ = ["CorrelatorFit", "fit_correlator", "central_of_range", "refit_range", "with_warnings",
            "RangeProblem", "prepare_range"]
 
@@ -166,9 +169,10 @@ def refit_range(problem: RangeProblem, central: CentralFit) -> CorrelatorFit:
 
     When the central fit is already degenerate by its own curvature (it
     failed, a parameter is on a bound, or the ground state collapsed), the
-    refits run in the batched engine only: their errors serve the
-    diagnostics, and refitting stragglers one by one would cost much for a
-    fit that gets weight 0 anyway.
+    refits run in the batched engine only, for at most
+    :data:`DEGENERATE_REFIT_ITERATIONS` iterations: their errors serve the
+    diagnostics, and a full budget (or refitting stragglers one by one) would
+    cost much for a fit that gets weight 0 anyway.
     """
     model = problem.model
     x = problem.x
@@ -177,8 +181,10 @@ def refit_range(problem: RangeProblem, central: CentralFit) -> CorrelatorFit:
                      values=central.physical, errors=central.errors,
                      curvature_errors=central.errors, converged=central.converged,
                      at_bound=central.at_bound, oscillating=model.oscillating)
+    hopeless = is_degenerate(early)
     kwargs = dict(priors=problem.priors, bounds=problem.bounds, engine=problem.engine,
-                  tol=problem.tol, fallback=not is_degenerate(early))
+                  tol=problem.tol, fallback=not hopeless,
+                  max_iter=DEGENERATE_REFIT_ITERATIONS if hopeless else None)
     if problem.per_sample:
         cov_samples = covmod.per_sample_covariances(x, **problem.covariance_options)
         refits = jackknife_refits(y_samples, model, central.theta, cov_samples=cov_samples,

@@ -98,7 +98,8 @@ def jackknife_refits(y_samples: np.ndarray, model: CorrelatorModel, start: np.nd
                      priors: Mapping[str, Any] | None = None,
                      bounds: Mapping[str, Any] | None = None, engine: str = "auto",
                      tol: float = DEFAULT_TOL, max_nfev: int | None = None,
-                     stol: float | None = STAT_TOL, fallback: bool = True) -> RefitResult:
+                     stol: float | None = STAT_TOL, fallback: bool = True,
+                     max_iter: int | None = None) -> RefitResult:
     """Refit every jackknife sample, warm-started from the central fit.
 
     Parameters
@@ -133,6 +134,9 @@ def jackknife_refits(y_samples: np.ndarray, model: CorrelatorModel, start: np.nd
         Refit the samples the batched engine leaves unconverged with lmfit,
         when they are at most :data:`FALLBACK_FRACTION` of all (else they
         count as failed).
+    max_iter : int, optional
+        Iteration budget of the batched engine (default
+        :func:`refit_iterations`).
 
     Returns
     -------
@@ -197,7 +201,8 @@ def jackknife_refits(y_samples: np.ndarray, model: CorrelatorModel, start: np.nd
     else:
         theta, conv = batched_refits(y_samples, model, start, chol=chol,
                                      chol_samples=chol_samples, priors=priors, bounds=bounds,
-                                     stol=stol, max_iter=refit_iterations(model.n_params))
+                                     stol=stol, max_iter=refit_iterations(model.n_params)
+                                     if max_iter is None else int(max_iter))
         theta = np.array(theta, dtype=float)
         conv = np.array(conv, dtype=bool)
         redo = np.flatnonzero(~conv)

@@ -66,6 +66,10 @@ class _RunLog:
         self.warnings.append(message)
         self.info(f"warning: {message}")
 
+    def detail(self, message: str) -> None:
+        """A line for run.log only, never echoed (e.g. each flagged scan point)."""
+        self.lines.append(message)
+
 
 @dataclass(frozen=True)
 class _Autocorrelation:
@@ -321,14 +325,15 @@ def _run_fit(index: int, fit_spec: Any, spec: Any, binned: dict[str, np.ndarray]
                                 + "; ".join(f.message for f in chosen_fit.flags))
     for f in fits:
         for flag in f.flags:
-            log.info(f"fit {fit_spec.name}: tmin={f.tmin} tmax={f.tmax} states={f.states}: "
-                     f"{flag.code}: {flag.message}")
+            log.detail(f"fit {fit_spec.name}: tmin={f.tmin} tmax={f.tmax} states={f.states}: "
+                       f"{flag.code}: {flag.message}")
     n_numerical = sum(f.n_numerical_warnings for f in fits)
     if n_numerical:
         log.info(f"fit {fit_spec.name}: {n_numerical} numerical warning(s) from numpy/scipy/"
-                 f"lmfit were caught inside the fits (expected while a minimiser explores); "
-                 "first messages: " + " | ".join(
-                     sorted({m for f in fits for m in f.numerical_warnings})[:5]))
+                 "lmfit were caught inside the fits (expected while a minimiser explores a "
+                 "steep or flat region); run.log has the messages")
+        log.detail(f"fit {fit_spec.name}: caught: " + " | ".join(
+            sorted({m for f in fits for m in f.numerical_warnings})[:5]))
     if shown.covariance.shrinkage > _STRONG_SHRINKAGE:
         fit_warnings.append(f"fit {fit_spec.name}: strong covariance shrinkage "
                             f"({shown.covariance.shrinkage:.2f}); more bins would help")
