@@ -258,3 +258,19 @@ def test_formula_fit_equals_the_built_in_cosh_fit():
                                [built_in.values["E0"], built_in.values["A0.pion"]], rtol=1e-7)
     np.testing.assert_allclose(formula.errors["m"], built_in.errors["E0"], rtol=1e-5)
     np.testing.assert_allclose(formula.chi2, built_in.chi2, rtol=1e-8)
+
+
+def test_a_fit_from_jackknife_samples_equals_the_fit_from_bins():
+    # the pseudo-values of the jackknife samples of the mean are the bins again,
+    # so a fit given only those samples (and the central values) is the same fit
+    from plateaufit.stats.resample import jackknife_samples, pseudo_values
+
+    binned = _binned()["pion"]
+    plain = fit_correlator(binned, form="cosh", states=2, tmin=3, tmax=15, time_extent=T)
+    from_samples = fit_correlator(pseudo_values(jackknife_samples(binned)), form="cosh",
+                                  states=2, tmin=3, tmax=15, time_extent=T,
+                                  central=binned.mean(axis=0))
+    for name in plain.names:
+        # equal up to where the minimisers stop (a small fraction of an error)
+        assert abs(from_samples.values[name] - plain.values[name]) <= 1e-4 * plain.errors[name]
+        assert from_samples.errors[name] == pytest.approx(plain.errors[name], rel=1e-4)

@@ -58,3 +58,18 @@ def test_jackknife_error_of_the_mean_is_the_standard_error(x):
     expected = np.std(x, ddof=1) / np.sqrt(len(x))
     got = float(jackknife_error(jackknife_samples(x)))
     assert got == pytest.approx(expected, rel=1e-7, abs=1e-9 * (1.0 + np.max(np.abs(x))))
+
+
+def test_pseudo_values_reproduce_the_jackknife_samples_and_their_covariance():
+    # source: Tukey (1958) pseudo-values p_s = N m - (N - 1) y_s; their delete-one
+    # means are the y_s again, and the covariance of their mean is the jackknife
+    # covariance (N-1)/N sum (y_s - m)(y_s - m)^T (Efron 1982)
+    from plateaufit.stats.covariance import covariance_of_mean
+    from plateaufit.stats.resample import jackknife_covariance, jackknife_samples, pseudo_values
+
+    rng = np.random.default_rng(12)
+    y = rng.normal(size=(40, 5)) @ np.diag([1.0, 2.0, 3.0, 4.0, 5.0]) * 1e-3 + 0.5
+    p = pseudo_values(y)
+    np.testing.assert_allclose(jackknife_samples(p), y, rtol=1e-12, atol=1e-15)
+    np.testing.assert_allclose(covariance_of_mean(p, shrinkage="none").matrix,
+                               jackknife_covariance(y), rtol=1e-10)

@@ -264,7 +264,9 @@ def fit_correlator(binned, *, form: str, states: int, tmin: int, tmax: int,
                    formula: Mapping | None = None, start: Mapping[str, float] | None = None,
                    engine: str = "auto", n_total_points: int | None = None,
                    eigenvalue_floor: float | None = None,
-                   tol: float = DEFAULT_TOL) -> CorrelatorFit:
+                   tol: float = DEFAULT_TOL,
+                   central: Mapping[str, np.ndarray] | np.ndarray | None = None
+                   ) -> CorrelatorFit:
     """Correlated fit of one fit range, with jackknife refits for the errors.
 
     Parameters
@@ -298,6 +300,12 @@ def fit_correlator(binned, *, form: str, states: int, tmin: int, tmax: int,
         timeslices of the fit's observables, ``sum n_t``.
     tol : float, optional
         Minimiser tolerance.
+    central : ndarray or dict NAME -> ndarray, optional
+        The data of the central fit when it is not the mean of ``binned``:
+        with ``binned`` the pseudo-values of jackknife samples
+        (:func:`plateaufit.stats.resample.pseudo_values`), the fit of an
+        estimate known only through its jackknife samples (a principal
+        correlator of the GEVP); the refits then run on exactly those samples.
 
     Returns
     -------
@@ -328,7 +336,8 @@ def fit_correlator(binned, *, form: str, states: int, tmin: int, tmax: int,
                                 oscillating=oscillating, constant=constant,
                                 factorised=factorised, formula=formula, start=start,
                                 engine=engine, n_total_points=n_total_points,
-                                eigenvalue_floor=eigenvalue_floor, tol=tol)
+                                eigenvalue_floor=eigenvalue_floor, tol=tol,
+                                central=central)
         fit = refit_range(problem, central_of_range(problem))
     return with_warnings(fit, caught)
 

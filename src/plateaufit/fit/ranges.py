@@ -114,12 +114,21 @@ def prepare_range(binned, *, form: str, states: int, tmin: int, tmax: int,
                   engine: str = "auto", n_total_points: int | None = None,
                   eigenvalue_floor: float | None = None,
                   tol: float = DEFAULT_TOL,
-                  effective_masses: Mapping[str, Any] | None = None) -> RangeProblem:
+                  effective_masses: Mapping[str, Any] | None = None,
+                  central: Mapping[str, np.ndarray] | np.ndarray | None = None
+                  ) -> RangeProblem:
     """Set up one fit range (arguments as for :func:`fit_correlator`).
 
     ``effective_masses``, observable -> :class:`plateaufit.stats.effmass.EffectiveMass`
     of all its timeslices, saves computing them for every range of a scan (they
     serve the plateau test of the diagnostics).
+
+    ``central``, observable -> all its timeslices (or one array for a single
+    observable), is the data vector of the central fit when it is not the
+    mean of the bins: for an estimate known through jackknife samples (a
+    principal correlator of the GEVP), the bins are their pseudo-values
+    (:func:`plateaufit.stats.resample.pseudo_values`) and ``central`` the
+    estimate on the full data.
 
     Raises
     ------
@@ -173,9 +182,20 @@ def prepare_range(binned, *, form: str, states: int, tmin: int, tmax: int,
                                                  time_extent=time_extent)
             masses.append((m.value[tmin:tmax], m.error[tmin:tmax]))
         effective = tuple(masses)
+    y = x.mean(axis=0)
+    if central is not None:
+        central_map = central if isinstance(central, Mapping) else {names[0]: central}
+        missing = [n for n in names if n not in central_map]
+        if missing:
+            raise FitError("central", f"no central values for {missing}")
+        y = np.concatenate([np.asarray(central_map[n], dtype=float).ravel()[tmin:tmax + 1]
+                            for n in names])
+        if y.size != x.shape[1] or not np.all(np.isfinite(y)):
+            raise FitError("central", "the central values must be finite and cover every "
+                           "timeslice of the data")
     return RangeProblem(
         model=model, observables=tuple(names), tmin=tmin, tmax=tmax, states=int(states),
-        form=form, x=x, y=x.mean(axis=0), covariance=cov_result, chol=chol,
+        form=form, x=x, y=y, covariance=cov_result, chol=chol,
         n_total_points=int(n_total_points), covariance_options=cov_kw, priors=priors,
         bounds=bounds, start=start, per_sample=bool(per_sample), engine=engine, tol=tol,
         effective_masses=effective, model_options=model_options)

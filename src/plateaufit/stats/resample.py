@@ -30,6 +30,7 @@ __all__ = [
     "jackknife_covariance",
     "jackknife_bias_corrected",
     "bootstrap_samples",
+    "pseudo_values",
 ]
 
 
@@ -343,3 +344,35 @@ def bootstrap_samples(data: np.ndarray, n_boot: int, seed: int | np.random.SeedS
         counts = rng.multinomial(n, np.full(n, 1.0 / n), size=hi - lo)
         out[lo:hi] = counts @ flat / n
     return out.reshape((n_boot,) + data.shape[1:])
+
+
+def pseudo_values(samples: np.ndarray) -> np.ndarray:
+    """Jackknife pseudo-values: rows whose delete-one means are the given samples.
+
+    For jackknife samples ``y_s`` (``s = 1..N``) of some estimate, with mean
+    ``m``, the pseudo-values are ``p_s = N m - (N - 1) y_s``. They play the
+    part of bins: :func:`jackknife_samples` of them returns ``y_s`` exactly,
+    and the covariance of their mean is the jackknife covariance of ``y_s``.
+    So anything computed from bins (a covariance of the mean with shrinkage,
+    jackknife refits) can be computed for an estimate known only through its
+    jackknife samples, e.g. a principal correlator of the GEVP.
+
+    Parameters
+    ----------
+    samples : ndarray, shape (N, ...)
+        Jackknife samples.
+
+    Returns
+    -------
+    ndarray, shape (N, ...)
+
+    References
+    ----------
+    .. [1] J. W. Tukey, "Bias and confidence in not-quite large samples", Ann.
+       Math. Statist. 29 (1958) 614 -- the pseudo-values.
+    """
+    samples = np.asarray(samples, dtype=float)
+    if samples.ndim == 0 or samples.shape[0] < 2:
+        raise DataError("samples", "pseudo-values need at least 2 jackknife samples")
+    n = samples.shape[0]
+    return n * samples.mean(axis=0) - (n - 1) * samples
