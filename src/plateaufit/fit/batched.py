@@ -94,13 +94,18 @@ _LAM_GIVE_UP = 1e16
 # all, e.g. the energy of a state with zero amplitude). It changes the step,
 # never the fixed point.
 _REGULARISATION = 1e-14
-# With 3 to this many parameters and at least _ELIMINATION_MIN_SAMPLES samples
-# the damped normal equations are solved by elimination vectorised over the
-# samples, otherwise by LAPACK one matrix at a time (measured: at 200 samples
+# With 3 to this many parameters the damped normal equations are solved by
+# elimination vectorised over the samples, with more by LAPACK one matrix at a
+# time. The choice depends on the number of parameters only, never on how many
+# samples are in the working set, so a sample's iteration does not switch
+# algorithms when others finish. (Bitwise independence of the other samples is
+# not achievable batch-last: numpy's einsum reductions round differently for
+# different batch sizes and positions; results are reproducible for the same
+# batch, and agree with any other batch within the stopping tolerance.)
+# (Measured: at 200 samples
 # elimination is 1.3-1.7x faster for 3-4 parameters, even at 6 and slower
 # from about 10; at 20 samples LAPACK is 2-3x faster).
 _ELIMINATION_MAX = 6
-_ELIMINATION_MIN_SAMPLES = 96
 # Finished samples are dropped from the working arrays once they are at least
 # 1/_COMPACT_EVERY of them, and carried along masked until then. Compacting
 # every iteration, at 1/8, or never (compact=False) measured the same within
@@ -229,12 +234,13 @@ def _solve_shifted(scaled: np.ndarray, shift: np.ndarray | float,
     Gaussian elimination without pivoting, vectorised over the stack (stable
     for symmetric positive definite matrices; Golub & Van Loan, Matrix
     Computations, section 4.2, from memory). For more than
-    ``_ELIMINATION_MAX`` parameters or fewer than ``_ELIMINATION_MIN_SAMPLES``
-    matrices LAPACK's solve, one matrix at a time, is faster.
+    ``_ELIMINATION_MAX`` parameters LAPACK's solve, one matrix at a time, is
+    faster. The choice never depends on the number of matrices (see the
+    module constants).
     """
     p = scaled.shape[0]
     diag = np.arange(p)
-    if p > _ELIMINATION_MAX or scaled.shape[2] < _ELIMINATION_MIN_SAMPLES:
+    if p > _ELIMINATION_MAX:
         mat = scaled.transpose(2, 0, 1).copy()
         mat[:, diag, diag] += np.reshape(shift, (-1, 1))
         return np.linalg.solve(mat, rhs.T[:, :, None])[:, :, 0].T
