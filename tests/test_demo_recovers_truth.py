@@ -10,7 +10,7 @@ from pathlib import Path
 
 import pytest
 
-from plateaufit.spec.runner import run_spec
+from plateaufit.pipeline.run import run_spec
 
 DEMO_SPEC = Path(__file__).resolve().parents[1] / "fit_specs" / "demo.yaml"
 

@@ -78,7 +78,7 @@ def test_stream_counts_label_configurations_and_must_add_up():
     assert ens.stream_counts() == {0: 6, 1: 4}
     with pytest.raises(DataError) as err:
         align({"a": raw(a)}, 4, stream_counts=[6, 3])
-    assert err.value.where == "ensemble.streams"
+    assert err.value.where == "stream_counts"
     assert "add up to 9" in err.value.message and "have 10" in err.value.message
 
 

@@ -31,7 +31,7 @@ import yaml
 
 from plateaufit.data.transforms import fold
 from plateaufit.fit.correlator_fit import fit_correlator
-from plateaufit.spec.runner import run_spec
+from plateaufit.pipeline.run import run_spec
 from plateaufit.stats.resample import bin_samples, jackknife_error
 
 SEED = 24_0611

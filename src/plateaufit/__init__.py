@@ -13,6 +13,7 @@ that the command line starts quickly):
   :func:`average_fits`, :func:`evaluate_derived`
 - data: :func:`load_correlator`, :func:`fold`
 - the whole job from a spec: :func:`run_spec`, :func:`load_spec`
+- typed results of a scan, for the report's plots: :func:`summarise_scan`
 """
 
 from __future__ import annotations
@@ -55,8 +56,9 @@ _EXPORTS: dict[str, str] = {
     "evaluate_derived": "plateaufit.fit.derived",
     "load_correlator": "plateaufit.data.loaders",
     "fold": "plateaufit.data.transforms",
-    "load_spec": "plateaufit.spec.schema",
-    "run_spec": "plateaufit.spec.runner",
+    "load_spec": "plateaufit.pipeline.rules",
+    "run_spec": "plateaufit.pipeline.run",
+    "summarise_scan": "plateaufit.pipeline.summary",
 }
 
 __all__ = ["__version__", "PlateaufitError", "SpecError", "DataError", "FitError", *_EXPORTS]

@@ -715,7 +715,7 @@ def run_demo(out: str | Path, jobs: int | None = None, progress: bool = True) ->
     dict
         The results (as results.json).
     """
-    from plateaufit.spec.runner import run_spec
+    from plateaufit.pipeline.run import run_spec
 
     out = Path(out)
     generate_demo_data(out / "data")

@@ -292,11 +292,11 @@ def _resolve_streams(
     if stream_counts is not None:
         counts = [int(c) for c in stream_counts]
         if not counts or any(c < 1 for c in counts):
-            raise DataError("ensemble.streams", f"stream counts must be whole numbers >= 1, "
+            raise DataError("stream_counts", f"stream counts must be whole numbers >= 1, "
                             f"got {counts}")
         if sum(counts) != n_cfg:
             raise DataError(
-                "ensemble.streams",
+                "stream_counts",
                 f"the stream counts {counts} add up to {sum(counts)} configurations but the "
                 f"data have {n_cfg}; they must be equal",
             )
@@ -307,9 +307,9 @@ def _resolve_streams(
         file_counts = [int(np.count_nonzero(from_files == s)) for s in in_order]
         if file_counts != [int(c) for c in stream_counts] or not _is_contiguous(from_files):
             raise DataError(
-                "ensemble.streams",
+                "stream_counts",
                 f"the counts {list(stream_counts)} disagree with the files' stream column "
-                f"(counts {file_counts}); remove ensemble.streams or make them agree",
+                f"(counts {file_counts}); remove the counts or make them agree",
             )
         return from_files
     if from_files is not None:
