@@ -4,6 +4,7 @@ real browser rendering it."""
 from __future__ import annotations
 
 import base64
+import html
 import copy
 import io
 import json
@@ -18,10 +19,12 @@ import pytest
 
 from plateaufit.cli import main
 from plateaufit.errors import DataError
-from plateaufit.report.html import collect_warnings, rebuild_report, write_report
+from plateaufit.pipeline.results import Results
+from plateaufit.pipeline.warnings import collect_warnings
+from plateaufit.report.html import rebuild_report, write_report
 from plateaufit.report.plots import plot_plan
 from plateaufit.report.tables import format_value_error
-from report_fixtures import make_results
+from pipeline_results import make_results
 
 _IMG = re.compile(r'<img src="([^"]*)"[^>]*?width="(\d+)" height="(\d+)"')
 
@@ -62,7 +65,8 @@ def test_page_has_every_section(rebuilt) -> None:
     ens = results["ensemble"]
     for value in (ens["name"], ens["n_configs"], ens["n_bins"], ens["bin_size"], ens["n_dropped"]):
         assert f"<td>{value}</td>" in text
-    assert "503, 501" in text                    # configurations per stream
+    sizes = ens["stream_sizes"]
+    assert f"{sizes[0]}, {sizes[1]}" in text     # configurations per stream
     tau = ens["tau_int"]["pion_ll"]
     assert format_value_error(tau["value"], tau["error"]) in text
     assert "1/2 + sum" in text                    # the tau_int convention is stated
@@ -144,36 +148,43 @@ def test_provenance_is_shown(rebuilt) -> None:
     assert "demo = 20240611" in text and prov["created"] in text
 
 
-def test_warnings_are_gathered_and_completed() -> None:
+def test_the_warnings_are_the_pipelines_rules_applied_to_the_results() -> None:
+    # the report decides no warning: the pipeline's table (plateaufit.pipeline.warnings)
+    # finds these in the results, each once, with its code
     results = make_results(strong_shrinkage=True, unreliable_tau=True)
     results["fits"]["kaon"]["chosen"]["p_value"] = 0.012
-    results["fits"]["pion"]["warnings"] = []           # nothing said by the runner
-    results["warnings"] = ["a run-level note"]
     results["ensemble"]["tau_int"]["pion_ls"]["reliable"] = False
-    messages = collect_warnings(results)
-    assert messages[0] == "a run-level note"
-    joined = "\n".join(messages)
+    found = collect_warnings(Results.from_dict(results))
+    by_code = {}
+    for w in found:
+        by_code.setdefault(w.code, []).append(w)
+    joined = "\n".join(w.message for w in found)
     assert "fit kaon: the chosen fit has p-value 0.012" in joined
     assert "pion_ls: no autocorrelation window was found" in joined
     assert "kaon_ll: no autocorrelation window was found" in joined
     assert "fit pion: strong covariance shrinkage (0.70)" in joined
-    assert "fit pion: 1 of 110 scan points did not converge" in joined
+    assert "fit pion: 1 of 42 scan points did not converge" in joined
     assert "fit pion: 2 jackknife refit(s) failed" in joined
-    assert len(messages) == len(set(messages)) == 7
+    assert len(found) == len({w.message for w in found}) == 6
+    assert [w.fit for w in by_code["low-p-value"]] == ["kaon"]
+    assert len(by_code["tau-unreliable"]) == 2 and by_code["tau-unreliable"][0].fit is None
 
 
-def test_warnings_already_given_are_not_repeated() -> None:
+def test_the_page_shows_exactly_the_warnings_of_the_results(tmp_path) -> None:
     results = make_results()
-    messages = collect_warnings(results)
-    # the fixture's own messages on non-converged points and refits, nothing added
-    assert messages == results["warnings"] + results["fits"]["pion"]["warnings"]
+    assert results["warnings"]                    # the edited points of the pion scan
+    text = _page_text(results, tmp_path)
+    items = re.findall(r"<li>(.*?)</li>", text.split('<section id="warnings">')[1]
+                       .split("</section>")[0])
+    assert items == [html.escape(m, quote=True) for m in results["warnings"]]
 
 
 def test_page_lists_the_warnings(tmp_path) -> None:
     results = make_results(strong_shrinkage=True)
     text = _page_text(results, tmp_path)
-    for message in collect_warnings(results):
-        assert f"<li>{message}</li>" in text
+    assert any("strong covariance shrinkage" in m for m in results["warnings"])
+    for message in results["warnings"]:
+        assert f"<li>{html.escape(message, quote=True)}</li>" in text
     clean = make_results()
     clean["warnings"] = []
     for fit in clean["fits"].values():

@@ -30,7 +30,7 @@ __all__ = [
     "ParamEstimate", "PointEstimate", "ScanPointResult", "PointSummary", "ChosenResult",
     "EffectiveMassResult", "CovarianceSummary", "FitResult", "TauIntSummary",
     "AutocorrelationSummary", "BinningStudySummary", "ObservableSummary", "EnsembleResult",
-    "DerivedQuantity", "Warning", "Results", "jsonable", "TAU_INT_CONVENTION",
+    "DerivedQuantity", "Warning", "Results", "jsonable", "as_float", "TAU_INT_CONVENTION",
 ]
 
 TAU_INT_CONVENTION = "1/2 + sum_{t>=1} rho(t)"
@@ -57,14 +57,17 @@ def jsonable(obj: Any) -> Any:
     return obj
 
 
-def _f(x: Any) -> float:
-    """A JSON number (None for NaN) as a float."""
+def as_float(x: Any) -> float:
+    """A JSON number as a float: None, bools and text that is no number give NaN."""
     if x is None or isinstance(x, bool):
         return math.nan
     try:
         return float(x)
     except (TypeError, ValueError):
         return math.nan
+
+
+_f = as_float
 
 
 def _i(x: Any, default: int = 0) -> int:
@@ -576,7 +579,9 @@ class Results:
 
     ``warnings`` is the run's warnings table (written as the list of messages
     ``warnings`` and, with codes, ``warning_table``; each fit's own messages
-    also go to ``fits.NAME.warnings``).
+    also go to ``fits.NAME.warnings``). Reading, the messages of ``warnings``
+    are what counts: ``warning_table`` only adds the codes when it lists the
+    same messages.
     """
 
     version: str
@@ -606,10 +611,11 @@ class Results:
     def from_dict(cls, d: Mapping[str, Any]) -> Results:
         """Typed results from a results.json dict (sparse ones too)."""
         fits = {name: FitResult.from_dict(name, fit) for name, fit in _get(d, "fits").items()}
-        if d.get("warning_table") is not None:
-            table = [Warning.from_dict(w) for w in d["warning_table"]]
-        else:   # an older results.json: the messages only
-            table = [Warning("", None, str(m)) for m in d.get("warnings") or []]
+        messages = [str(m) for m in d.get("warnings") or []]
+        table = [Warning.from_dict(w) for w in d.get("warning_table") or []]
+        if [w.message for w in table] != messages:
+            # an older (or edited) results.json: the messages are what counts
+            table = [Warning("", None, m) for m in messages]
             known = {w.message for w in table}
             for name, fit in fits.items():
                 table += [Warning("", name, m) for m in fit.warnings if m not in known]

@@ -167,7 +167,7 @@ def _write_outputs(results: Results, data: dict[str, Any], out_dir: Path, plots:
         from plateaufit.report.html import write_report
         from plateaufit.report.plots import make_all_plots
 
-        page = write_report(data, out_dir, figures=make_all_plots(data, out_dir))
+        page = write_report(results, out_dir, figures=make_all_plots(results, out_dir))
         log.info(f"report page: {page}")
     write_text(out_dir / "run.log", "\n".join(log.lines) + "\n")
     write_text(out_dir / "results.json", json.dumps(data, indent=1, allow_nan=False) + "\n")
