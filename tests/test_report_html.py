@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import base64
 import html
-import copy
 import io
 import json
 import re
