@@ -211,8 +211,7 @@ def test_yaml_syntax_error_through_the_cli(capsys, tmp_path):
     code = main(["check", str(path)])
     captured = capsys.readouterr()
     assert_user_error(code, captured.out, captured.err, "broken.yaml", "line")
-
-
+@pytest.mark.slow   # a process pool or subprocess
 def test_subprocess_check_exits_2_with_one_line(project):
     d, data = project
     data["covariance"] = {"shrinkage": 2}

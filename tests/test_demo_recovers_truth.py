@@ -12,6 +12,8 @@ import pytest
 
 from plateaufit.pipeline.run import run_spec
 
+pytestmark = pytest.mark.slow   # runs a process pool or a subprocess
+
 DEMO_SPEC = Path(__file__).resolve().parents[1] / "fit_specs" / "demo.yaml"
 
 

@@ -290,6 +290,7 @@ def test_plan_has_every_plot_for_every_fit_and_observable(results) -> None:
                 assert any(other.get_xlabel() for other in siblings), (item.key, ax)
 
 
+@pytest.mark.slow   # draws and writes every plot of the run
 def test_make_all_plots_writes_every_plot(all_plots, results) -> None:
     out, written, _ = all_plots
     assert list(written) == ["autocorr.kaon_ll", "binning.kaon_ll", "kaon.effmass.kaon_ll",
@@ -303,6 +304,7 @@ def test_make_all_plots_writes_every_plot(all_plots, results) -> None:
         assert image[..., :3].std() > 0.01          # not a blank canvas
 
 
+@pytest.mark.slow   # draws and writes every plot of the run
 def test_make_all_plots_leaves_no_global_matplotlib_state(all_plots) -> None:
     import matplotlib.pyplot as plt
 

@@ -38,11 +38,20 @@ def rebuilt(tmp_path_factory):
     return out, page, results
 
 
+@pytest.fixture(scope="module")
+def page_only(tmp_path_factory):
+    """The page of the same results without plots (fast), for the tests about its text."""
+    out = tmp_path_factory.mktemp("page")
+    results = make_results()
+    return out, write_report(results, out, figures={}), results
+
+
 def _page_text(results, tmp_path: Path) -> str:
     """The page without plots (fast), for tests about text."""
     return write_report(results, tmp_path, figures={}).read_text(encoding="utf-8")
 
 
+@pytest.mark.slow   # draws and writes every plot of the run
 def test_rebuild_report_writes_tables_plots_and_page(rebuilt) -> None:
     out, page, results = rebuilt
     assert page == out / "report.html" and page.is_file()
@@ -52,8 +61,8 @@ def test_rebuild_report_writes_tables_plots_and_page(rebuilt) -> None:
     assert len(list((out / "plots").glob("*.pdf"))) == len(plot_plan(results))
 
 
-def test_page_has_every_section(rebuilt) -> None:
-    _, page, results = rebuilt
+def test_page_has_every_section(page_only) -> None:
+    _, page, results = page_only
     text = page.read_text(encoding="utf-8")
     assert text.startswith("<!DOCTYPE html>")
     for anchor, heading in [("warnings", "Warnings"), ("data", "Data summary"),
@@ -71,8 +80,8 @@ def test_page_has_every_section(rebuilt) -> None:
     assert "1/2 + sum" in text                    # the tau_int convention is stated
 
 
-def test_page_shows_chosen_results_and_truth(rebuilt) -> None:
-    _, page, results = rebuilt
+def test_page_shows_chosen_results_and_truth(page_only) -> None:
+    _, page, results = page_only
     text = page.read_text(encoding="utf-8")
     assert "truth</th>" in text
     for fit_name, fit in results["fits"].items():
@@ -91,6 +100,7 @@ def test_page_without_truth_has_no_truth_column(tmp_path) -> None:
     assert "<h2>Results</h2>" in text
 
 
+@pytest.mark.slow   # draws and writes every plot of the run
 def test_every_image_is_an_embedded_png(rebuilt) -> None:
     _, page, results = rebuilt
     text = page.read_text(encoding="utf-8")
@@ -104,6 +114,7 @@ def test_every_image_is_an_embedded_png(rebuilt) -> None:
         assert pixels.shape[:2] == (int(height), int(width))
 
 
+@pytest.mark.slow   # draws and writes every plot of the run
 def test_page_is_self_contained(rebuilt) -> None:
     _, page, _ = rebuilt
     text = page.read_text(encoding="utf-8").lower()
@@ -119,8 +130,8 @@ def test_hostile_names_are_escaped(tmp_path) -> None:
     assert "kaon &amp; &lt;b&gt;co&lt;/b&gt;" in text
 
 
-def test_scan_tables_mark_the_chosen_and_the_top_weighted_fit(rebuilt) -> None:
-    _, page, results = rebuilt
+def test_scan_tables_mark_the_chosen_and_the_top_weighted_fit(page_only) -> None:
+    _, page, results = page_only
     text = page.read_text(encoding="utf-8")
     chosen_rows = re.findall(r'<tr class="chosen">(.*?)</tr>', text)
     assert len(chosen_rows) == 1                       # the kaon fit's choice
@@ -137,8 +148,8 @@ def test_scan_tables_mark_the_chosen_and_the_top_weighted_fit(rebuilt) -> None:
     assert '<tr class="failed">' in text               # the non-converged point
 
 
-def test_provenance_is_shown(rebuilt) -> None:
-    _, page, results = rebuilt
+def test_provenance_is_shown(page_only) -> None:
+    _, page, results = page_only
     text = page.read_text(encoding="utf-8")
     prov = results["provenance"]
     assert prov["spec_sha256"] in text
@@ -284,8 +295,7 @@ def _run_browser(browser: str, profile: Path, *args: str) -> subprocess.Complete
            "--disable-background-networking", "--disable-component-update", "--disable-sync",
            "--no-first-run", "--disable-extensions", f"--user-data-dir={profile}", *args]
     return subprocess.run(cmd, capture_output=True, text=True, timeout=60, check=False)
-
-
+@pytest.mark.slow   # a process pool or subprocess
 def test_page_renders_in_a_headless_browser(rebuilt, tmp_path) -> None:
     browser = _browser()
     if browser is None:

@@ -127,8 +127,7 @@ def test_average_recovers_the_ground_state_and_weights_move_to_two_states(two_st
     # and a one-state fit from tmin = 1 is visibly bad
     one_from_1 = next(f for f in fits if f.tmin == 1 and f.states == 1)
     assert one_from_1.central.p_value < 1e-3
-
-
+@pytest.mark.slow   # a process pool or subprocess
 def test_scan_is_bitwise_the_same_on_two_processes(data):
     kwargs = dict(tmin=[2, 5], tmax=[12, 13], states=[1, 2], form="exp", time_extent=T)
     serial = scan(data, **kwargs)
