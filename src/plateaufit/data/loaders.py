@@ -32,6 +32,10 @@ Accepted formats (``format=`` or, by default, the file suffix):
     are numbered 0, 1, ... in sorted order.
 
 Complex data: the real part is returned unless ``part="imag"``.
+
+One module of about 600 lines on purpose: the five readers share the context that
+names the file and spec key in every error, and the shape, id and NaN checks; split
+per format, each reader would import all of that back.
 """
 
 from __future__ import annotations

@@ -21,6 +21,10 @@ References
    Carlo method for the self-avoiding walk", J. Stat. Phys. 50 (1988) 109.
 .. [3] H. Flyvbjerg, H. G. Petersen, "Error estimates on averages of correlated
    data", J. Chem. Phys. 91 (1989) 461.
+
+One module of about 600 lines on purpose: tau_int, its derived-quantity form, the
+binning study and the bin-size rule share the windowing and the stream handling, and
+the rule is justified against the estimator it sizes.
 """
 
 from __future__ import annotations

@@ -34,6 +34,10 @@ References
 .. [3] J. Schäfer, K. Strimmer, "A shrinkage approach to large-scale covariance
    matrix estimation and implications for functional genomics",
    Stat. Appl. Genet. Mol. Biol. 4 (2005) 32 (shrinking the correlation matrix).
+
+One module of about 600 lines on purpose: the shrinkage intensities, the targets, the
+eigenvalue floor and the per-sample covariances are one estimator with options, and
+the checks against scikit-learn test them together.
 """
 
 from __future__ import annotations
