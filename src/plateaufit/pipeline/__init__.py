@@ -4,12 +4,13 @@
   cross-checks; ``load_spec``, ``validate_spec``, ``as_spec``
 - :mod:`~plateaufit.pipeline.inputs` -- spec -> Ensemble (files, folding, alignment)
 - :mod:`~plateaufit.pipeline.prepare` -- tau_int per timeslice, the bin size, binned data
-- :mod:`~plateaufit.pipeline.fits` -- spec keys -> ``fit_correlator`` arguments, scan, choose/average
+- :mod:`~plateaufit.pipeline.fits` -- spec keys -> ``fit_correlator`` arguments, scan,
+  choose or average
 - :mod:`~plateaufit.pipeline.summary` -- typed results from the fit core's objects
   (``summarise_scan``, for notebooks too)
 - :mod:`~plateaufit.pipeline.derived` -- ``derived:`` quantities
 - :mod:`~plateaufit.pipeline.warnings` -- the table of warning rules
-- :mod:`~plateaufit.pipeline.results` -- the typed results and their one ``to_dict``/``from_dict``
+- :mod:`~plateaufit.pipeline.results` -- the typed results, their one ``to_dict``/``from_dict``
 - :mod:`~plateaufit.pipeline.keys` -- the one map from the core's argument names to spec keys
 - :mod:`~plateaufit.pipeline.run` -- ``run_spec``; :mod:`~plateaufit.pipeline.check` -- ``check_spec``
 

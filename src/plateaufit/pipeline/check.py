@@ -23,7 +23,8 @@ import numpy as np
 from plateaufit.errors import FitError, PlateaufitError
 from plateaufit.pipeline.fits import covariance_kwargs
 from plateaufit.pipeline.inputs import load_ensemble
-from plateaufit.pipeline.prepare import Prepared, choose_bins, effective_mass_kind, minimum_bins, prepare
+from plateaufit.pipeline.prepare import (Prepared, choose_bins, effective_mass_kind, minimum_bins,
+                                         prepare)
 from plateaufit.pipeline.rules import load_spec
 from plateaufit.pipeline.summary import effective_mass_results
 from plateaufit.report.tables import format_value_error

@@ -164,7 +164,8 @@ def prepare(spec: Spec, ensemble: Ensemble) -> Prepared:
         for name, series in ensemble.correlators.items():
             binned[name], n_dropped = bin_samples(series, bin_size, labels, return_dropped=True)
     return Prepared(ensemble=ensemble, taus=taus, bin_size=bin_size, auto_bin_size=auto_size,
-                    bin_size_notes=notes, automatic=spec.binning.size == "auto", binned=binned, n_dropped=int(n_dropped))
+                    bin_size_notes=notes, automatic=spec.binning.size == "auto", binned=binned,
+                    n_dropped=int(n_dropped))
 
 
 def effective_mass_kind(spec: Spec, ensemble: Ensemble, name: str) -> str:

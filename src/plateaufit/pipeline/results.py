@@ -34,7 +34,7 @@ __all__ = [
     "ParamEstimate", "PointEstimate", "ScanPointResult", "PointSummary", "ChosenResult",
     "EffectiveMassResult", "CovarianceSummary", "FitResult", "TauIntSummary",
     "AutocorrelationSummary", "BinningStudySummary", "ObservableSummary", "EnsembleResult",
-    "DerivedQuantity", "Warning", "Results", "jsonable", "as_float", "TAU_INT_CONVENTION",
+    "DerivedQuantity", "RunWarning", "Results", "jsonable", "as_float", "TAU_INT_CONVENTION",
 ]
 
 TAU_INT_CONVENTION = "1/2 + sum_{t>=1} rho(t)"
@@ -188,7 +188,8 @@ class ScanPointResult:
         return cls(
             tmin=int(d["tmin"]), tmax=int(d["tmax"]), form=str(d.get("model", "")),
             states=int(d.get("states", 1)), chi2=_f(d.get("chi2")),
-            chi2_data=_f(d.get("chi2_data", d.get("chi2"))), chi2_prior=_f(d.get("chi2_prior", 0.0)),
+            chi2_data=_f(d.get("chi2_data", d.get("chi2"))),
+            chi2_prior=_f(d.get("chi2_prior", 0.0)),
             dof=_i(d.get("dof")), n_points=_i(d.get("n_points")), n_priors=_i(d.get("n_priors")),
             p_value=_f(d.get("p_value")), p_value_hotelling=_f(d.get("p_value_hotelling")),
             aic=_f(d.get("aic")), weight=_f(d.get("weight")),
@@ -562,8 +563,11 @@ class DerivedQuantity:
 
 
 @dataclass(frozen=True)
-class Warning:   # noqa: A001 -- the results' own word; never raised, never filtered
-    """One warning of a run: a short code, the fit it concerns (or None), the message."""
+class RunWarning:
+    """One warning of a run: a short code, the fit it concerns (or None), the message.
+
+    A record in the results (never raised, never passed to ``warnings.warn``).
+    """
 
     code: str
     fit: str | None
@@ -573,7 +577,7 @@ class Warning:   # noqa: A001 -- the results' own word; never raised, never filt
         return {"code": self.code, "fit": self.fit, "message": self.message}
 
     @classmethod
-    def from_dict(cls, d: Mapping[str, Any]) -> Warning:
+    def from_dict(cls, d: Mapping[str, Any]) -> RunWarning:
         return cls(str(d.get("code", "")), d.get("fit"), str(d.get("message", "")))
 
 
@@ -594,7 +598,7 @@ class Results:
     fits: dict[str, FitResult]
     derived: dict[str, DerivedQuantity] = field(default_factory=dict)
     truth: dict[str, dict[str, float]] = field(default_factory=dict)
-    warnings: list[Warning] = field(default_factory=list)
+    warnings: list[RunWarning] = field(default_factory=list)
     provenance: dict[str, Any] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
@@ -616,13 +620,13 @@ class Results:
         """Typed results from a results.json dict (sparse ones too)."""
         fits = {name: FitResult.from_dict(name, fit) for name, fit in _get(d, "fits").items()}
         messages = [str(m) for m in d.get("warnings") or []]
-        table = [Warning.from_dict(w) for w in d.get("warning_table") or []]
+        table = [RunWarning.from_dict(w) for w in d.get("warning_table") or []]
         if [w.message for w in table] != messages:
             # an older (or edited) results.json: the messages are what counts
-            table = [Warning("", None, m) for m in messages]
+            table = [RunWarning("", None, m) for m in messages]
             known = {w.message for w in table}
             for name, fit in fits.items():
-                table += [Warning("", name, m) for m in fit.warnings if m not in known]
+                table += [RunWarning("", name, m) for m in fit.warnings if m not in known]
         truth = {str(k): {str(p): _f(v) for p, v in vals.items()}
                  for k, vals in _get(d, "truth").items() if isinstance(vals, Mapping)}
         return cls(version=str(d.get("version", "")),

@@ -58,4 +58,5 @@ def as_spec(source: str | os.PathLike[str] | Spec | Mapping[str, Any], *,
         return validate_spec(dict(source), base_dir=base_dir)
     if isinstance(source, (str, os.PathLike)):
         return load_spec(Path(source))
-    raise SpecError("", f"expected a spec file path, a Spec or a dict, got {type(source).__name__}")
+    raise SpecError("", "expected a spec file path, a Spec or a dict, got "
+                    f"{type(source).__name__}")

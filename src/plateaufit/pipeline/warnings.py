@@ -1,7 +1,7 @@
 """The warnings of a run: one table of rules over the typed results.
 
 Each rule has a code and a function of the :class:`~plateaufit.pipeline.results.Results`
-that yields the :class:`~plateaufit.pipeline.results.Warning` items it finds;
+that yields the :class:`~plateaufit.pipeline.results.RunWarning` items it finds;
 :func:`collect_warnings` runs the table in order. The pipeline stores the
 result in ``Results.warnings`` (and each fit's messages in its own
 ``warnings``); the report only renders them. The thresholds are here and
@@ -14,7 +14,7 @@ import math
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, replace
 
-from plateaufit.pipeline.results import FitResult, Results, Warning
+from plateaufit.pipeline.results import FitResult, Results, RunWarning
 
 __all__ = ["LOW_P_VALUE", "STRONG_SHRINKAGE", "Rule", "RULES", "collect_warnings",
            "with_warnings"]
@@ -31,94 +31,94 @@ class Rule:
 
     code: str
     about: str
-    check: Callable[[Results], Iterator[Warning]]
+    check: Callable[[Results], Iterator[RunWarning]]
 
 
 def _fits(results: Results) -> Iterator[tuple[str, FitResult]]:
     yield from results.fits.items()
 
 
-def _tau_unreliable(results: Results) -> Iterator[Warning]:
+def _tau_unreliable(results: Results) -> Iterator[RunWarning]:
     for name, tau in results.ensemble.tau_int.items():
         if not tau.reliable:
-            yield Warning("tau-unreliable", None,
+            yield RunWarning("tau-unreliable", None,
                           f"{name}: no autocorrelation window was found at every timeslice; "
                           f"tau_int = {tau.value:.3g} is a lower bound there (the chains are "
                           "short for their autocorrelation)")
 
 
-def _bin_size_capped(results: Results) -> Iterator[Warning]:
+def _bin_size_capped(results: Results) -> Iterator[RunWarning]:
     for note in results.ensemble.bin_size_notes:
-        yield Warning("bin-size-capped", None, f"binning.size: {note}")
+        yield RunWarning("bin-size-capped", None, f"binning.size: {note}")
 
 
-def _chosen_not_converged(results: Results) -> Iterator[Warning]:
+def _chosen_not_converged(results: Results) -> Iterator[RunWarning]:
     for name, fit in _fits(results):
         if not fit.chosen.converged:
             what = ("a fit contributing to the average" if fit.chosen.is_average
                     else "the chosen fit")
-            yield Warning("chosen-not-converged", name, f"fit {name}: {what} did not converge")
+            yield RunWarning("chosen-not-converged", name, f"fit {name}: {what} did not converge")
 
 
-def _low_p_value(results: Results) -> Iterator[Warning]:
+def _low_p_value(results: Results) -> Iterator[RunWarning]:
     for name, fit in _fits(results):
         p = fit.chosen.point.p_value
         if p < LOW_P_VALUE:
             which = "highest-weight" if fit.chosen.is_average else "chosen"
-            yield Warning("low-p-value", name, f"fit {name}: the {which} fit has p-value "
+            yield RunWarning("low-p-value", name, f"fit {name}: the {which} fit has p-value "
                           f"{p:.3g} (below {LOW_P_VALUE})")
 
 
-def _points_excluded(results: Results) -> Iterator[Warning]:
+def _points_excluded(results: Results) -> Iterator[RunWarning]:
     for name, fit in _fits(results):
         if fit.chosen.is_average and fit.chosen.n_excluded:
-            yield Warning("points-excluded", name,
+            yield RunWarning("points-excluded", name,
                           f"fit {name}: {fit.chosen.n_excluded} of {len(fit.scan)} scan points "
                           "did not converge or ended with E0 <= 0, and were given weight 0")
         elif not fit.chosen.is_average:
             failed = sum(1 for p in fit.scan if not p.converged)
             if failed:
-                yield Warning("points-not-converged", name, f"fit {name}: {failed} of "
+                yield RunWarning("points-not-converged", name, f"fit {name}: {failed} of "
                               f"{len(fit.scan)} scan points did not converge")
 
 
-def _refits_failed(results: Results) -> Iterator[Warning]:
+def _refits_failed(results: Results) -> Iterator[RunWarning]:
     for name, fit in _fits(results):
         n = sum(p.n_refit_failed for p in fit.scan)
         if n:
-            yield Warning("refits-failed", name, f"fit {name}: {n} jackknife refit(s) failed: "
+            yield RunWarning("refits-failed", name, f"fit {name}: {n} jackknife refit(s) failed: "
                           "they did not converge even with the fallback fitter")
 
 
-def _strong_shrinkage(results: Results) -> Iterator[Warning]:
+def _strong_shrinkage(results: Results) -> Iterator[RunWarning]:
     for name, fit in _fits(results):
         lam = fit.covariance.shrinkage if fit.covariance is not None else math.nan
         if lam > STRONG_SHRINKAGE:
-            yield Warning("strong-shrinkage", name, f"fit {name}: strong covariance shrinkage "
+            yield RunWarning("strong-shrinkage", name, f"fit {name}: strong covariance shrinkage "
                           f"({lam:.2f}); more bins would help")
 
 
-def _scan_point_flagged(results: Results) -> Iterator[Warning]:
+def _scan_point_flagged(results: Results) -> Iterator[RunWarning]:
     for name, fit in _fits(results):
         for p in fit.scan:
             if p.flags:
                 reasons = "; ".join(p.flag_messages) if p.flag_messages else ", ".join(p.flags)
-                yield Warning("scan-point-flagged", name,
+                yield RunWarning("scan-point-flagged", name,
                               f"fit {name}: scan point {p.label} flagged: {reasons}")
 
 
-def _numerical_warnings(results: Results) -> Iterator[Warning]:
+def _numerical_warnings(results: Results) -> Iterator[RunWarning]:
     for name, fit in _fits(results):
         n = sum(p.n_numerical_warnings for p in fit.scan)
         if n:
-            yield Warning("numerical-warnings", name, f"fit {name}: {n} numerical warnings from "
+            yield RunWarning("numerical-warnings", name, f"fit {name}: {n} numerical warnings from "
                           "numpy/scipy caught, see run.log")
 
 
-def _derived_dropped(results: Results) -> Iterator[Warning]:
+def _derived_dropped(results: Results) -> Iterator[RunWarning]:
     for name, d in results.derived.items():
         if d.n_dropped:
-            yield Warning("derived-samples-dropped", None,
+            yield RunWarning("derived-samples-dropped", None,
                           f"derived {name}: {d.n_dropped} jackknife sample(s) left out, where a "
                           "refit of an input failed")
 
@@ -142,7 +142,7 @@ RULES: tuple[Rule, ...] = (
 )
 
 
-def collect_warnings(results: Results, rules: tuple[Rule, ...] = RULES) -> list[Warning]:
+def collect_warnings(results: Results, rules: tuple[Rule, ...] = RULES) -> list[RunWarning]:
     """Every warning the rules find in ``results``, in table order."""
     return [w for rule in rules for w in rule.check(results)]
 
