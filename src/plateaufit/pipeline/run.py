@@ -162,7 +162,7 @@ def _write_outputs(results: Results, data: dict[str, Any], out_dir: Path, plots:
     """Tables, plots and page first; results.json last (its presence means complete)."""
     from plateaufit.report.tables import write_tables
 
-    write_tables(data, out_dir)
+    write_tables(results, out_dir)
     if plots:
         from plateaufit.report.html import write_report
         from plateaufit.report.plots import make_all_plots
