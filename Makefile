@@ -4,7 +4,7 @@ VENV   := .venv
 PY     := $(VENV)/bin/python
 STAMP  := $(VENV)/.installed
 
-.PHONY: demo test bench clean
+.PHONY: demo test test-fast bench clean
 
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -16,6 +16,10 @@ demo: $(STAMP)
 
 test: $(STAMP)
 	$(PY) -m pytest -q
+
+# everything but the tests marked slow (process pools, subprocesses, the browser, all plots)
+test-fast: $(STAMP)
+	$(PY) -m pytest -q -m "not slow"
 
 bench: $(STAMP)
 	$(PY) benchmarks/run_benchmarks.py

@@ -217,6 +217,28 @@ plt.close(fig)
 print(f"plot written to {plot_path}")
 
 # %% [markdown]
+# ## The report's plots of this scan
+# `pf.summarise_scan` turns the scan into the typed result a spec run reports for a
+# fit (the model average over every parameter, the highest-weight point, the
+# covariance behind it and, given the binned data, the effective mass); the
+# report's plot functions take it as they take a run's results.
+
+# %%
+result = pf.summarise_scan(fits, name="kestrel", binned={"kestrel": binned}, time_extent=T)
+e0 = result.chosen.params["E0"]
+print(f"summarised scan: {result.chosen.method} of {result.chosen.n_fits} fits, "
+      f"E0 = {e0.value:.5f} +- {e0.error:.5f}, highest weight "
+      f"[{result.chosen.point.tmin}, {result.chosen.point.tmax}], "
+      f"{result.chosen.point.states} states")
+report_plots = []
+for kind, figure in (("stability", pf.plot_stability(result, truth=TRUTH)),
+                     ("weights", pf.plot_weights(result)),
+                     ("effmass", pf.plot_effective_mass(result, "kestrel", truth=TRUTH))):
+    png, _pdf = pf.save_figure(figure, plot_dir / f"kestrel_{kind}")
+    report_plots.append(str(png))
+print(f"report plots written: {', '.join(Path(p).name for p in report_plots)}")
+
+# %% [markdown]
 # ## Summary (what the test of this walkthrough checks)
 
 # %%
@@ -234,5 +256,7 @@ SUMMARY = {
     "average": {"E0": float(avg.value["E0"]), "E0_error": float(avg.error["E0"]),
                 "weights": [float(w) for w in avg.weights]},
     "plot": str(plot_path),
+    "summarised": {"E0": float(e0.value), "E0_error": float(e0.error),
+                   "method": result.chosen.method, "plots": report_plots},
 }
 print(SUMMARY)

@@ -96,3 +96,19 @@ def test_the_plot_is_written_where_asked(walkthrough):
     assert path.parent == plot_dir
     assert path.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert f"plot written to {path}" in stdout
+
+
+def test_the_summarised_scan_is_the_same_average_and_its_plots_are_written(walkthrough):
+    namespace, stdout, plot_dir = walkthrough
+    s = namespace["SUMMARY"]
+    summary, avg = s["summarised"], s["average"]
+    assert summary["method"] == "average"
+    # pf.summarise_scan averages with the same weights as pf.model_average by hand
+    assert summary["E0"] == pytest.approx(avg["E0"], rel=1e-12)
+    assert summary["E0_error"] == pytest.approx(avg["E0_error"], rel=1e-10)
+    names = [Path(p).name for p in summary["plots"]]
+    assert names == ["kestrel_stability.png", "kestrel_weights.png", "kestrel_effmass.png"]
+    for p in summary["plots"]:
+        assert Path(p).parent == plot_dir
+        assert Path(p).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert "report plots written: kestrel_stability.png" in stdout

@@ -15,9 +15,9 @@ import yaml
 
 from plateaufit.cli import main
 from plateaufit.errors import DataError
-from plateaufit.spec.check import check_spec
-from plateaufit.spec.inputs import data_checksums, load_ensemble
-from plateaufit.spec.schema import load_spec
+from plateaufit.pipeline.check import check_spec
+from plateaufit.pipeline.inputs import data_checksums, load_ensemble
+from plateaufit.pipeline.rules import load_spec
 
 ROOT = Path(__file__).resolve().parents[1]
 EXAMPLE = ROOT / "examples" / "check_example.yaml"
@@ -211,8 +211,7 @@ def test_yaml_syntax_error_through_the_cli(capsys, tmp_path):
     code = main(["check", str(path)])
     captured = capsys.readouterr()
     assert_user_error(code, captured.out, captured.err, "broken.yaml", "line")
-
-
+@pytest.mark.slow   # a process pool or subprocess
 def test_subprocess_check_exits_2_with_one_line(project):
     d, data = project
     data["covariance"] = {"shrinkage": 2}
@@ -274,7 +273,7 @@ def test_check_and_fit_choose_the_same_automatic_bin_size(capsys, project, tmp_p
     # one rule, two users: check must report the bin size fit will use
     import re
 
-    from plateaufit.spec.runner import run_spec
+    from plateaufit.pipeline.run import run_spec
 
     d, data = project
     data["binning"]["size"] = "auto"
@@ -288,8 +287,8 @@ def test_check_and_fit_choose_the_same_automatic_bin_size(capsys, project, tmp_p
 
 def test_without_shrinkage_auto_binning_keeps_more_bins_than_fit_points(tmp_path):
     # an unshrunk covariance of p points needs more than p bins (exact: rank <= n_bins - 1)
-    from plateaufit.spec.inputs import minimum_bins
-    from plateaufit.spec.schema import validate_spec
+    from plateaufit.pipeline.prepare import minimum_bins
+    from plateaufit.pipeline.rules import validate_spec
 
     data = {"ensemble": {"name": "wide", "time_extent": 64},
             "observables": {"a": {"file": "a.txt"}, "b": {"file": "b.txt"}},

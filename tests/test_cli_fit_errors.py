@@ -245,6 +245,7 @@ def test_check_refuses_the_same_bad_input(case, tmp_path, capsys):
 
 @pytest.mark.parametrize(("command", "case"), [("fit", "nan-in-text-file"),
                                                ("check", "tmax-beyond-folded-range")])
+@pytest.mark.slow   # a process pool or subprocess
 def test_the_installed_command_exits_2_with_one_line(command, case, tmp_path):
     writer, patterns = CASES[case]
     spec_path = writer(tmp_path)

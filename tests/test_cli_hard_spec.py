@@ -54,4 +54,5 @@ def test_a_hard_scan_without_priors_finishes_quietly_and_flags_its_degenerate_po
     assert all(p["weight"] == 0.0 for p in flagged)
     log = (tmp_path / "out" / "run.log").read_text()
     for p in flagged:
-        assert f"tmin={p['tmin']} tmax={p['tmax']} states={p['states']}" in log
+        state = "state" if p["states"] == 1 else "states"
+        assert f"flagged [{p['tmin']}, {p['tmax']}], {p['states']} {state}" in log

@@ -4,6 +4,10 @@ import os
 import subprocess
 import sys
 
+import pytest
+
+pytestmark = pytest.mark.slow   # runs a process pool or a subprocess
+
 SCRIPT = ("import os; from plateaufit import cli; cli._one_blas_thread_per_process(); "
           "import numpy; print(os.environ.get('OPENBLAS_NUM_THREADS'))")
 

@@ -75,7 +75,7 @@ def test_spec_file_is_the_generated_spec_and_carries_the_truth():
 
 
 def test_spec_passes_validation():
-    from plateaufit.spec.schema import load_spec
+    from plateaufit.pipeline.rules import load_spec
 
     spec = load_spec(SPEC)
     assert spec.ensemble.time_extent == TIME_EXTENT

@@ -10,7 +10,9 @@ from pathlib import Path
 
 import pytest
 
-from plateaufit.spec.runner import run_spec
+from plateaufit.pipeline.run import run_spec
+
+pytestmark = pytest.mark.slow   # runs a process pool or a subprocess
 
 DEMO_SPEC = Path(__file__).resolve().parents[1] / "fit_specs" / "demo.yaml"
 

@@ -18,7 +18,7 @@ import pytest
 from plateaufit.cli import main
 from plateaufit.errors import FitError
 from plateaufit.fit.derived import DerivedExpression, DerivedInput, evaluate_derived
-from plateaufit.spec.schema import validate_spec
+from plateaufit.pipeline.rules import validate_spec
 from test_runner_end_to_end import TRUTH_E0, invented_spec, write_invented_run
 
 KNOWN = {"pion": ["E0", "E1", "A0.pion_ss"], "vector": ["E0"], "pion-2": ["E0"]}
@@ -201,12 +201,16 @@ def test_a_spec_without_derived_quantities_keeps_truth_by_fit_name():
 
 
 def test_a_parameter_without_result_is_a_fit_error_naming_the_derived_key():
-    from plateaufit.spec.runner import _derived_section, _RunLog
+    from types import SimpleNamespace
+
+    from plateaufit.pipeline.derived import derive
 
     spec = validate_spec(_spec_with(lambda s: None))
     jk = np.linspace(0.41, 0.43, 20)
+    fits = {"kaon": SimpleNamespace(derived_inputs={"E0": DerivedInput(0.42, jk)}),
+            "eta": SimpleNamespace(derived_inputs={})}
     with pytest.raises(FitError) as err:
-        _derived_section(spec, {"kaon": {"E0": DerivedInput(0.42, jk)}, "eta": {}}, _RunLog())
+        derive(spec, fits)
     assert err.value.where == "derived.ratio" and "eta.E0 has no result" in err.value.message
 
 
@@ -215,7 +219,7 @@ def test_a_parameter_without_result_is_a_fit_error_naming_the_derived_key():
 
 @pytest.fixture(scope="module")
 def derived_run(tmp_path_factory):
-    from plateaufit.spec.runner import run_spec
+    from plateaufit.pipeline.run import run_spec
 
     directory = tmp_path_factory.mktemp("derived_run")
     spec = invented_spec()

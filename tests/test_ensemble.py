@@ -82,7 +82,7 @@ def test_stream_counts_label_configurations_and_must_add_up():
     assert ens.stream_counts() == {0: 6, 1: 4}
     with pytest.raises(DataError) as err:
         align({"a": raw(a)}, 4, stream_counts=[6, 3])
-    assert err.value.where == "ensemble.streams"
+    assert err.value.where == "stream_counts"
     assert "add up to 9" in err.value.message and "have 10" in err.value.message
 
 
@@ -200,7 +200,7 @@ def test_streams_follow_first_appearance_and_ids_within_a_stream(tmp_path):
     np.testing.assert_array_equal(ens.correlators["x"], values)
     with pytest.raises(DataError) as err:
         align({"x": r}, 3, stream_counts=[7, 5])
-    assert err.value.where == "ensemble.streams"
+    assert err.value.where == "stream_counts"
     assert "[7, 5] disagree" in err.value.message and "b: 5, a: 7" in err.value.message
 
 
@@ -214,7 +214,7 @@ def test_files_listing_streams_in_different_orders():
     # with counts it is ambiguous which count is whose
     with pytest.raises(DataError) as err:
         align({"p": first, "k": second}, 2, stream_counts=[2, 2])
-    assert err.value.where == "ensemble.streams" and "different orders" in err.value.message
+    assert err.value.where == "stream_counts" and "different orders" in err.value.message
     assert "p (p.csv): 0, 1" in err.value.message and "k (k.csv): 1, 0" in err.value.message
 
 
@@ -237,7 +237,7 @@ def test_stream_counts_follow_each_files_own_order_of_configurations():
     text = raw(values, name="t.txt")
     with pytest.raises(DataError) as err:
         align({"c": sorted_raw, "t": text}, 2, stream_counts=[6, 3])
-    assert err.value.where == "ensemble.streams"
+    assert err.value.where == "stream_counts"
     assert "split the observables' configurations differently" in err.value.message
     assert "c (c.h5) stored its configurations out of id order" in err.value.message
 

@@ -27,9 +27,17 @@ def test_names_bad_input():
 
 
 def test_formula_accepts_arithmetic():
-    check_formula("a * exp(-m * t) + a * exp(-m * (T - t)) + where(t > 3, c, 0) + pi",
-                  ["a", "m", "c"])
-    check_formula("a", ["a"])   # a plateau (constant) fit is a legitimate formula
+    text = "a * exp(-m * t) + a * exp(-m * (T - t)) + where(t > 3, c, 0) + pi"
+    tree = check_formula(text, ["a", "m", "c"])
+    # the accepted expression keeps its meaning: evaluated with numpy it is the formula
+    t = np.arange(6.0)
+    got = eval(compile(tree, "<formula>", "eval"),
+               {"__builtins__": {}, "exp": np.exp, "where": np.where, "pi": np.pi},
+               {"a": 2.0, "m": 0.5, "c": 0.1, "t": t, "T": 12})
+    want = 2.0 * (np.exp(-0.5 * t) + np.exp(-0.5 * (12 - t))) + np.where(t > 3, 0.1, 0) + np.pi
+    np.testing.assert_allclose(got, want, rtol=1e-15)
+    # a plateau (constant) fit is a legitimate formula
+    assert eval(compile(check_formula("a", ["a"]), "<formula>", "eval"), {}, {"a": 3.0}) == 3.0
 
 
 @pytest.mark.parametrize("expr, match", [

@@ -46,8 +46,7 @@ def test_serial_map_keeps_order_and_passes_shared():
         assert ex.map(operator.neg, [3, 1, 2]) == [-3, -1, -2]
         assert ex.map(operator.add, [3, 1, 2], shared=10) == [13, 11, 12]
         assert ex.map(operator.neg, []) == []
-
-
+@pytest.mark.slow   # a process pool or subprocess
 def test_process_pool_gives_bitwise_the_serial_results_in_input_order(pool):
     shared = {"diag": 5.0}
     seeds = list(range(23))
@@ -59,8 +58,7 @@ def test_process_pool_gives_bitwise_the_serial_results_in_input_order(pool):
         assert x_serial.tobytes() == x_pool.tobytes()
     # the work really went to other processes
     assert {pid for _, pid in got} - {os.getpid()}
-
-
+@pytest.mark.slow   # a process pool or subprocess
 def test_user_error_in_a_worker_is_reraised_with_its_place_and_message(pool):
     with pytest.raises(DataError) as info:
         pool.map(refuse_odd, [0, 2, 4, 5, 6, 8])
@@ -108,8 +106,7 @@ def die_abruptly(item):
     if item == 3:
         os._exit(1)   # a worker killed from outside looks the same to the pool
     return item
-
-
+@pytest.mark.slow   # a process pool or subprocess
 def test_a_worker_that_dies_gives_a_clear_error_not_a_hang():
     with make_executor(jobs=2) as ex:
         with pytest.raises(FitError) as info:

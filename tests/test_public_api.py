@@ -1,14 +1,25 @@
 """The top-level API named in the design's contract resolves to the real functions."""
 
+import importlib
+
 import numpy as np
 import pytest
 
 import plateaufit as pf
+from plateaufit import errors
 
 
-@pytest.mark.parametrize("name", [n for n in pf.__all__ if n != "__version__"])
-def test_every_export_resolves(name):
-    assert getattr(pf, name) is not None
+@pytest.mark.parametrize("name", sorted(pf._EXPORTS))
+def test_every_export_is_the_object_of_its_home_module(name):
+    home = importlib.import_module(pf._EXPORTS[name])
+    assert getattr(pf, name) is getattr(home, name)
+    assert callable(getattr(pf, name))          # functions and classes, nothing else
+
+
+def test_the_error_classes_are_the_ones_the_library_raises():
+    for name in ("PlateaufitError", "SpecError", "DataError", "FitError"):
+        assert getattr(pf, name) is getattr(errors, name)
+    assert issubclass(pf.SpecError, pf.PlateaufitError)
 
 
 def test_unknown_attribute_is_an_attribute_error():

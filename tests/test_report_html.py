@@ -4,7 +4,7 @@ real browser rendering it."""
 from __future__ import annotations
 
 import base64
-import copy
+import html
 import io
 import json
 import re
@@ -18,10 +18,12 @@ import pytest
 
 from plateaufit.cli import main
 from plateaufit.errors import DataError
-from plateaufit.report.html import collect_warnings, rebuild_report, write_report
+from plateaufit.pipeline.results import Results
+from plateaufit.pipeline.warnings import collect_warnings
+from plateaufit.report.html import rebuild_report, write_report
 from plateaufit.report.plots import plot_plan
 from plateaufit.report.tables import format_value_error
-from report_fixtures import make_results
+from pipeline_results import make_results
 
 _IMG = re.compile(r'<img src="([^"]*)"[^>]*?width="(\d+)" height="(\d+)"')
 
@@ -36,11 +38,20 @@ def rebuilt(tmp_path_factory):
     return out, page, results
 
 
+@pytest.fixture(scope="module")
+def page_only(tmp_path_factory):
+    """The page of the same results without plots (fast), for the tests about its text."""
+    out = tmp_path_factory.mktemp("page")
+    results = make_results()
+    return out, write_report(results, out, figures={}), results
+
+
 def _page_text(results, tmp_path: Path) -> str:
     """The page without plots (fast), for tests about text."""
     return write_report(results, tmp_path, figures={}).read_text(encoding="utf-8")
 
 
+@pytest.mark.slow   # draws and writes every plot of the run
 def test_rebuild_report_writes_tables_plots_and_page(rebuilt) -> None:
     out, page, results = rebuilt
     assert page == out / "report.html" and page.is_file()
@@ -50,8 +61,8 @@ def test_rebuild_report_writes_tables_plots_and_page(rebuilt) -> None:
     assert len(list((out / "plots").glob("*.pdf"))) == len(plot_plan(results))
 
 
-def test_page_has_every_section(rebuilt) -> None:
-    _, page, results = rebuilt
+def test_page_has_every_section(page_only) -> None:
+    _, page, results = page_only
     text = page.read_text(encoding="utf-8")
     assert text.startswith("<!DOCTYPE html>")
     for anchor, heading in [("warnings", "Warnings"), ("data", "Data summary"),
@@ -62,14 +73,15 @@ def test_page_has_every_section(rebuilt) -> None:
     ens = results["ensemble"]
     for value in (ens["name"], ens["n_configs"], ens["n_bins"], ens["bin_size"], ens["n_dropped"]):
         assert f"<td>{value}</td>" in text
-    assert "503, 501" in text                    # configurations per stream
+    sizes = ens["stream_sizes"]
+    assert f"{sizes[0]}, {sizes[1]}" in text     # configurations per stream
     tau = ens["tau_int"]["pion_ll"]
     assert format_value_error(tau["value"], tau["error"]) in text
     assert "1/2 + sum" in text                    # the tau_int convention is stated
 
 
-def test_page_shows_chosen_results_and_truth(rebuilt) -> None:
-    _, page, results = rebuilt
+def test_page_shows_chosen_results_and_truth(page_only) -> None:
+    _, page, results = page_only
     text = page.read_text(encoding="utf-8")
     assert "truth</th>" in text
     for fit_name, fit in results["fits"].items():
@@ -88,6 +100,7 @@ def test_page_without_truth_has_no_truth_column(tmp_path) -> None:
     assert "<h2>Results</h2>" in text
 
 
+@pytest.mark.slow   # draws and writes every plot of the run
 def test_every_image_is_an_embedded_png(rebuilt) -> None:
     _, page, results = rebuilt
     text = page.read_text(encoding="utf-8")
@@ -101,6 +114,7 @@ def test_every_image_is_an_embedded_png(rebuilt) -> None:
         assert pixels.shape[:2] == (int(height), int(width))
 
 
+@pytest.mark.slow   # draws and writes every plot of the run
 def test_page_is_self_contained(rebuilt) -> None:
     _, page, _ = rebuilt
     text = page.read_text(encoding="utf-8").lower()
@@ -116,8 +130,8 @@ def test_hostile_names_are_escaped(tmp_path) -> None:
     assert "kaon &amp; &lt;b&gt;co&lt;/b&gt;" in text
 
 
-def test_scan_tables_mark_the_chosen_and_the_top_weighted_fit(rebuilt) -> None:
-    _, page, results = rebuilt
+def test_scan_tables_mark_the_chosen_and_the_top_weighted_fit(page_only) -> None:
+    _, page, results = page_only
     text = page.read_text(encoding="utf-8")
     chosen_rows = re.findall(r'<tr class="chosen">(.*?)</tr>', text)
     assert len(chosen_rows) == 1                       # the kaon fit's choice
@@ -134,8 +148,8 @@ def test_scan_tables_mark_the_chosen_and_the_top_weighted_fit(rebuilt) -> None:
     assert '<tr class="failed">' in text               # the non-converged point
 
 
-def test_provenance_is_shown(rebuilt) -> None:
-    _, page, results = rebuilt
+def test_provenance_is_shown(page_only) -> None:
+    _, page, results = page_only
     text = page.read_text(encoding="utf-8")
     prov = results["provenance"]
     assert prov["spec_sha256"] in text
@@ -144,36 +158,44 @@ def test_provenance_is_shown(rebuilt) -> None:
     assert "demo = 20240611" in text and prov["created"] in text
 
 
-def test_warnings_are_gathered_and_completed() -> None:
+def test_the_warnings_are_the_pipelines_rules_applied_to_the_results() -> None:
+    # the report decides no warning: the pipeline's table (plateaufit.pipeline.warnings)
+    # finds these in the results, each once, with its code
     results = make_results(strong_shrinkage=True, unreliable_tau=True)
     results["fits"]["kaon"]["chosen"]["p_value"] = 0.012
-    results["fits"]["pion"]["warnings"] = []           # nothing said by the runner
-    results["warnings"] = ["a run-level note"]
     results["ensemble"]["tau_int"]["pion_ls"]["reliable"] = False
-    messages = collect_warnings(results)
-    assert messages[0] == "a run-level note"
-    joined = "\n".join(messages)
+    found = collect_warnings(Results.from_dict(results))
+    by_code = {}
+    for w in found:
+        by_code.setdefault(w.code, []).append(w)
+    joined = "\n".join(w.message for w in found)
     assert "fit kaon: the chosen fit has p-value 0.012" in joined
     assert "pion_ls: no autocorrelation window was found" in joined
     assert "kaon_ll: no autocorrelation window was found" in joined
     assert "fit pion: strong covariance shrinkage (0.70)" in joined
-    assert "fit pion: 1 of 110 scan points did not converge" in joined
+    # one point of an average given weight 0 is not a warning (run.log lists it)
+    assert "scan points" not in joined.split("refit(s) failed")[0]
     assert "fit pion: 2 jackknife refit(s) failed" in joined
-    assert len(messages) == len(set(messages)) == 7
+    assert len(found) == len({w.message for w in found}) == 5
+    assert [w.fit for w in by_code["low-p-value"]] == ["kaon"]
+    assert len(by_code["tau-unreliable"]) == 2 and by_code["tau-unreliable"][0].fit is None
 
 
-def test_warnings_already_given_are_not_repeated() -> None:
+def test_the_page_shows_exactly_the_warnings_of_the_results(tmp_path) -> None:
     results = make_results()
-    messages = collect_warnings(results)
-    # the fixture's own messages on non-converged points and refits, nothing added
-    assert messages == results["warnings"] + results["fits"]["pion"]["warnings"]
+    assert results["warnings"]                    # the edited points of the pion scan
+    text = _page_text(results, tmp_path)
+    items = re.findall(r"<li>(.*?)</li>", text.split('<section id="warnings">')[1]
+                       .split("</section>")[0])
+    assert items == [html.escape(m, quote=True) for m in results["warnings"]]
 
 
 def test_page_lists_the_warnings(tmp_path) -> None:
     results = make_results(strong_shrinkage=True)
     text = _page_text(results, tmp_path)
-    for message in collect_warnings(results):
-        assert f"<li>{message}</li>" in text
+    assert any("strong covariance shrinkage" in m for m in results["warnings"])
+    for message in results["warnings"]:
+        assert f"<li>{html.escape(message, quote=True)}</li>" in text
     clean = make_results()
     clean["warnings"] = []
     for fit in clean["fits"].values():
@@ -274,8 +296,7 @@ def _run_browser(browser: str, profile: Path, *args: str) -> subprocess.Complete
            "--disable-background-networking", "--disable-component-update", "--disable-sync",
            "--no-first-run", "--disable-extensions", f"--user-data-dir={profile}", *args]
     return subprocess.run(cmd, capture_output=True, text=True, timeout=60, check=False)
-
-
+@pytest.mark.slow   # a process pool or subprocess
 def test_page_renders_in_a_headless_browser(rebuilt, tmp_path) -> None:
     browser = _browser()
     if browser is None:

@@ -31,7 +31,7 @@ import yaml
 
 from plateaufit.data.transforms import fold
 from plateaufit.fit.correlator_fit import fit_correlator
-from plateaufit.spec.runner import run_spec
+from plateaufit.pipeline.run import run_spec
 from plateaufit.stats.resample import bin_samples, jackknife_error
 
 SEED = 24_0611
@@ -350,8 +350,7 @@ def test_without_out_the_spec_output_dir_is_used(tmp_path, monkeypatch):
     assert written.is_file()
     assert _read_json(written) == res
     assert list(elsewhere.iterdir()) == []
-
-
+@pytest.mark.slow   # a process pool or subprocess
 def test_results_do_not_depend_on_the_number_of_jobs(tmp_path):
     spec_path = write_invented_run(tmp_path)
     out = tmp_path / "out"
@@ -364,6 +363,7 @@ def test_results_do_not_depend_on_the_number_of_jobs(tmp_path):
     assert parallel == serial
 
 
+@pytest.mark.slow   # draws and writes every plot of the run
 def test_with_plots_the_report_page_and_plots_are_written(tmp_path):
     spec = invented_spec()
     spec["fits"] = spec["fits"][1:]

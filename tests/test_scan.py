@@ -7,7 +7,7 @@ import math
 import numpy as np
 import pytest
 
-from plateaufit.errors import FitError, SpecError
+from plateaufit.errors import FitError
 from plateaufit.fit.average import model_average
 from plateaufit.fit.scan import ScanPoint, expand_range, scan, scan_points
 from plateaufit.parallel import make_executor
@@ -76,16 +76,16 @@ def test_ranges_include_both_ends(spec, expected):
                                         ([1, 2, 3, 4], "expected"), (2.5, "expected"),
                                         (True, "expected")])
 def test_malformed_ranges_are_clear_errors(bad, match):
-    with pytest.raises(SpecError, match=match) as info:
+    with pytest.raises(FitError, match=match) as info:
         scan_points(bad, 10, 1, n_obs=1)
     assert info.value.where == "tmin"
 
 
 def test_bad_states_and_an_empty_scan_are_errors():
-    with pytest.raises(SpecError) as info:
+    with pytest.raises(FitError) as info:
         scan_points(2, 10, [0, 1], n_obs=1)
     assert info.value.where == "states"
-    with pytest.raises(SpecError, match="degree of freedom"):
+    with pytest.raises(FitError, match="degree of freedom"):
         scan_points(5, 6, 2, n_obs=1)   # 2 points, 4 parameters
 
 
@@ -127,8 +127,7 @@ def test_average_recovers_the_ground_state_and_weights_move_to_two_states(two_st
     # and a one-state fit from tmin = 1 is visibly bad
     one_from_1 = next(f for f in fits if f.tmin == 1 and f.states == 1)
     assert one_from_1.central.p_value < 1e-3
-
-
+@pytest.mark.slow   # a process pool or subprocess
 def test_scan_is_bitwise_the_same_on_two_processes(data):
     kwargs = dict(tmin=[2, 5], tmax=[12, 13], states=[1, 2], form="exp", time_extent=T)
     serial = scan(data, **kwargs)
@@ -156,7 +155,7 @@ def test_priors_on_excited_states_reach_only_the_fits_that_have_them(data):
 
 
 def test_tmax_beyond_the_data_is_refused(data):
-    with pytest.raises(SpecError) as info:
+    with pytest.raises(FitError) as info:
         scan(data, tmin=2, tmax=[10, T], states=1, form="exp", time_extent=T)
     assert info.value.where == "tmax"
     assert f"last timeslice is {T - 1}" in info.value.message

@@ -8,7 +8,8 @@ import pytest
 import yaml
 
 from plateaufit.errors import SpecError
-from plateaufit.spec.schema import ChooseSpec, Spec, load_spec, scan_values
+from plateaufit.pipeline.rules import load_spec
+from plateaufit.specfile import ChooseSpec, Spec, scan_values
 
 BASE = {
     "ensemble": {"name": "toy", "time_extent": 16, "streams": [10, 10]},
@@ -77,7 +78,9 @@ def test_choose_states_default_when_the_fit_has_one(tmp_path):
     data = copy.deepcopy(BASE)
     data["fits"][1]["tmin"] = [2, 4]
     data["fits"][1]["choose"] = {"tmin": 3, "tmax": 8}
-    assert load_spec(write(tmp_path, data)).fits[1].choose.states == 1
+    fit = load_spec(write(tmp_path, data)).fits[1]
+    assert fit.chosen_point() == (3, 8, 1)
+    assert fit.choose.states is None        # the validated spec is not changed
 
 
 # --------------------------------------------------------------------------- file-level errors

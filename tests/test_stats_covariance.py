@@ -86,13 +86,13 @@ def test_constant_component_names_the_component():
         per_sample_covariances(x)
 
 
-def test_bad_options_name_their_spec_key():
+def test_bad_options_name_their_own_argument():
     x = samples(30, 4, seed=7)
     for kw, key in [
-        ({"shrinkage": "ridge"}, "covariance.shrinkage"),
-        ({"shrinkage": 1.5}, "covariance.shrinkage"),
-        ({"target": "unit"}, "covariance.target"),
-        ({"eigenvalue_floor": 2.0}, "covariance.eigenvalue_floor"),
+        ({"shrinkage": "ridge"}, "shrinkage"),
+        ({"shrinkage": 1.5}, "shrinkage"),
+        ({"target": "unit"}, "target"),
+        ({"eigenvalue_floor": 2.0}, "eigenvalue_floor"),
     ]:
         with pytest.raises(SpecError) as err:
             covariance_of_mean(x, **kw)

@@ -44,16 +44,16 @@ def test_stream_changes_define_blocks():
 
 
 @pytest.mark.parametrize("size", [0, -2, 2.5, "four", True])
-def test_bad_bin_size_is_a_data_error_at_binning_size(size):
+def test_bad_bin_size_is_a_data_error_naming_the_size_argument(size):
     with pytest.raises(DataError) as err:
         bin_samples(np.ones(10), size)
-    assert err.value.where == "binning.size"
+    assert err.value.where == "size"
 
 
 def test_bin_larger_than_every_stream():
     with pytest.raises(DataError, match="larger than every stream") as err:
         bin_samples(np.ones(10), 6, np.repeat([0, 1], 5))
-    assert err.value.where == "binning.size"
+    assert err.value.where == "size"
     assert "5" in err.value.message
 
 

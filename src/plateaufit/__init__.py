@@ -13,6 +13,10 @@ that the command line starts quickly):
   :func:`average_fits`, :func:`evaluate_derived`
 - data: :func:`load_correlator`, :func:`fold`
 - the whole job from a spec: :func:`run_spec`, :func:`load_spec`
+- typed results of a scan, for the report's plots: :func:`summarise_scan` ->
+  :class:`FitResult`; :func:`plot_stability`, :func:`plot_weights`,
+  :func:`plot_effective_mass`, :func:`plot_correlation`, :func:`plot_eigenvalues`,
+  :func:`save_figure`
 """
 
 from __future__ import annotations
@@ -55,8 +59,17 @@ _EXPORTS: dict[str, str] = {
     "evaluate_derived": "plateaufit.fit.derived",
     "load_correlator": "plateaufit.data.loaders",
     "fold": "plateaufit.data.transforms",
-    "load_spec": "plateaufit.spec.schema",
-    "run_spec": "plateaufit.spec.runner",
+    "load_spec": "plateaufit.pipeline.rules",
+    "run_spec": "plateaufit.pipeline.run",
+    "summarise_scan": "plateaufit.pipeline.summary",
+    "Results": "plateaufit.pipeline.results",
+    "FitResult": "plateaufit.pipeline.results",
+    "plot_effective_mass": "plateaufit.report.fit_plots",
+    "plot_stability": "plateaufit.report.fit_plots",
+    "plot_weights": "plateaufit.report.fit_plots",
+    "plot_correlation": "plateaufit.report.fit_plots",
+    "plot_eigenvalues": "plateaufit.report.fit_plots",
+    "save_figure": "plateaufit.report.plots",
 }
 
 __all__ = ["__version__", "PlateaufitError", "SpecError", "DataError", "FitError", *_EXPORTS]

@@ -49,12 +49,12 @@ def _build_parser() -> argparse.ArgumentParser:
 
 def _dispatch(args: argparse.Namespace) -> int:
     if args.command == "check":
-        from plateaufit.spec.check import check_spec
+        from plateaufit.pipeline.check import check_spec
 
         print(check_spec(args.spec))
         return 0
     if args.command == "fit":
-        from plateaufit.spec.runner import run_spec
+        from plateaufit.pipeline.run import run_spec
 
         results = run_spec(args.spec, args.out, plots=not args.no_plots, jobs=args.jobs,
                            scheduler=args.scheduler, progress=not args.quiet, echo=True)

@@ -246,10 +246,10 @@ def _valid_counts(stream_counts: Sequence[int]) -> list[int]:
     try:
         counts = [int(c) for c in stream_counts]
     except (TypeError, ValueError):
-        raise DataError("ensemble.streams", f"stream counts must be whole numbers >= 1, got "
+        raise DataError("stream_counts", f"stream counts must be whole numbers >= 1, got "
                         f"{list(stream_counts)!r}") from None
     if not counts or any(c < 1 for c in counts):
-        raise DataError("ensemble.streams", f"stream counts must be whole numbers >= 1, "
+        raise DataError("stream_counts", f"stream counts must be whole numbers >= 1, "
                         f"got {counts}")
     return counts
 
@@ -259,7 +259,7 @@ def _label_by_counts(name: str, raw: RawCorrelator, counts: list[int]) -> RawCor
     n = raw.n_configs
     if sum(counts) != n:
         raise DataError(
-            "ensemble.streams",
+            "stream_counts",
             f"the stream counts {counts} add up to {sum(counts)} configurations but the "
             f"data have {n} ({name}: {raw.source}); they must be equal",
         )
@@ -292,7 +292,7 @@ def _stream_order(raws: dict[str, RawCorrelator], from_counts: bool,
         listed = "; ".join(f"{n} ({raws[n].source.name}): {', '.join(o)}"
                            for n, o in sorted(orders.items()))
         raise DataError(
-            "ensemble.streams",
+            "stream_counts",
             f"the files list the same streams in different orders ({listed}), so it is not "
             "clear which count belongs to which stream (counts follow the order of first "
             "appearance); list the streams in the same order in every file",
@@ -337,7 +337,7 @@ def _check_counts(codes: np.ndarray, ordered: list[int], stream_names: dict[int,
     if file_counts != counts:
         shown = ", ".join(f"{stream_names[c]}: {k}" for c, k in zip(ordered, file_counts))
         raise DataError(
-            "ensemble.streams",
+            "stream_counts",
             f"the counts {counts} disagree with the files' stream column (counts "
             f"{file_counts}: {shown}, streams in order of first appearance); remove "
             "ensemble.streams or make them agree",
@@ -379,7 +379,7 @@ def _split_differently(raws: dict[str, RawCorrelator], names: list[str]) -> Data
     why = (f" ({', '.join(f'{n} ({raws[n].source.name})' for n in moved)} stored its "
            "configurations out of id order)") if moved else ""
     return DataError(
-        "ensemble.streams",
+        "stream_counts",
         "the stream counts split the observables' configurations differently, because the "
         f"files store them in different orders{why}; give the files stream labels (a CSV "
         "stream column) or store every file's configurations in Monte Carlo order",

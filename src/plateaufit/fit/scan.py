@@ -26,7 +26,7 @@ from typing import Any
 
 import numpy as np
 
-from plateaufit.errors import FitError, PlateaufitError, SpecError
+from plateaufit.errors import FitError, PlateaufitError
 from plateaufit.fit.central import CentralFit
 from plateaufit.fit.correlator_fit import CorrelatorFit, refit_range, with_warnings
 from plateaufit.fit.models import EFFECTIVE_MASS_KIND, physical_parameter_names
@@ -88,7 +88,7 @@ def expand_range(spec: RangeSpec, where: str) -> list[int]:
 
     Raises
     ------
-    SpecError
+    FitError
         For anything else, a negative value, ``lo > hi`` or ``step < 1``.
     """
     what = "an integer, [lo, hi] or [lo, hi, step] (both ends included)"
@@ -98,15 +98,15 @@ def expand_range(spec: RangeSpec, where: str) -> list[int]:
         lo, hi = int(spec[0]), int(spec[1])
         step = int(spec[2]) if len(spec) == 3 else 1
         if lo > hi:
-            raise SpecError(where, f"the range {list(spec)} has lo > hi; write [lo, hi] with "
+            raise FitError(where, f"the range {list(spec)} has lo > hi; write [lo, hi] with "
                                    "lo <= hi")
         if step < 1:
-            raise SpecError(where, f"the step in {list(spec)} must be at least 1")
+            raise FitError(where, f"the step in {list(spec)} must be at least 1")
         values = list(range(lo, hi + 1, step))
     else:
-        raise SpecError(where, f"expected {what}, got {spec!r}")
+        raise FitError(where, f"expected {what}, got {spec!r}")
     if values[0] < 0:
-        raise SpecError(where, f"timeslices start at 0; got {values[0]}")
+        raise FitError(where, f"timeslices start at 0; got {values[0]}")
     return values
 
 
@@ -114,7 +114,7 @@ def _expand_states(states: int | Sequence[int]) -> list[int]:
     values = [states] if _is_int(states) else list(states) if isinstance(states, (list, tuple)) \
         else None
     if not values or not all(_is_int(s) and s >= 1 for s in values):
-        raise SpecError("states", f"expected a number of states >= 1 or a list of them, "
+        raise FitError("states", f"expected a number of states >= 1 or a list of them, "
                                   f"got {states!r}")
     return sorted(set(int(s) for s in values))
 
@@ -179,7 +179,7 @@ def scan_points(tmins: RangeSpec, tmaxs: RangeSpec, states: int | Sequence[int],
 
     Raises
     ------
-    SpecError
+    FitError
         A malformed range (``where`` = ``tmin``, ``tmax`` or ``states``), or
         no point with a degree of freedom left.
     """
@@ -197,7 +197,7 @@ def scan_points(tmins: RangeSpec, tmaxs: RangeSpec, states: int | Sequence[int],
                 if hi >= lo and n_points - n_params >= 1:
                     points.append(ScanPoint(lo, hi, n_states, n_points, n_params))
     if not points:
-        raise SpecError("", f"no fit range of tmin {tmins!r}, tmax {tmaxs!r} with states "
+        raise FitError("", f"no fit range of tmin {tmins!r}, tmax {tmaxs!r} with states "
                             f"{state_list} leaves a degree of freedom (points must exceed "
                             "parameters); widen the ranges or use fewer states")
     return points
@@ -313,7 +313,7 @@ def _lower_centrals(problems: list[RangeProblem]) -> list[CentralFit]:
 def _n_timeslices(binned: np.ndarray | Mapping[str, np.ndarray]) -> tuple[list[str] | None, int]:
     if isinstance(binned, Mapping):
         if not binned:
-            raise SpecError("observables", "a scan needs at least one observable")
+            raise FitError("observables", "a scan needs at least one observable")
         return list(binned), min(np.shape(v)[-1] for v in binned.values())
     return None, np.shape(binned)[-1]
 
@@ -354,10 +354,10 @@ def scan(binned: np.ndarray | Mapping[str, np.ndarray], *, tmin: RangeSpec, tmax
 
     Raises
     ------
-    SpecError
-        A malformed range, a ``tmax`` beyond the data, or no usable point.
     FitError
-        A point cannot be set up (the message names the point).
+        A malformed range, a ``tmax`` beyond the data, or no usable point
+        (``where`` is the argument: ``tmin``, ``tmax``, ``states``); a point
+        that cannot be set up (the message names the point).
 
     References
     ----------
@@ -371,7 +371,7 @@ def scan(binned: np.ndarray | Mapping[str, np.ndarray], *, tmin: RangeSpec, tmax
                          observables=names, formula=fit_kwargs.get("formula"), **options)
     last = max(p.tmax for p in points)
     if last > n_t - 1:
-        raise SpecError("tmax", f"tmax = {last} is beyond the data, whose last timeslice is "
+        raise FitError("tmax", f"tmax = {last} is beyond the data, whose last timeslice is "
                                 f"{n_t - 1} (after folding); lower tmax")
     if isinstance(binned, Mapping):
         data: Any = {name: np.asarray(v, dtype=np.float64) for name, v in binned.items()}

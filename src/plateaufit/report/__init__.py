@@ -1,11 +1,14 @@
-"""Reports from a results dict: value(error) tables, CSV and LaTeX, plots, one HTML page.
+"""Reports of a run's results: value(error) tables, CSV and LaTeX, plots, one HTML page.
 
-The report reads results dicts (the layout of results.json) and never refits.
+The report reads typed results (:class:`plateaufit.pipeline.results.Results`,
+or a results.json dict it converts) and never refits; it renders the warnings
+the pipeline decided (:mod:`plateaufit.pipeline.warnings`) and decides none.
 
 - :mod:`plateaufit.report.tables` -- ``format_value_error``, ``scan_table_csv``,
   ``latex_results_table``, ``write_tables``
-- :mod:`plateaufit.report.plots` -- one ``plot_*`` function per figure,
-  ``save_figure``, ``make_all_plots``
+- :mod:`plateaufit.report.plots` -- the plan, ``save_figure``, ``make_all_plots``; the
+  ``plot_*`` functions (in :mod:`~plateaufit.report.fit_plots` and
+  :mod:`~plateaufit.report.ensemble_plots`) take typed results
 - :mod:`plateaufit.report.html` -- ``write_report``, ``rebuild_report``
 
 The names below are imported on first use, so ``import plateaufit.report.tables``
@@ -27,7 +30,8 @@ _WHERE = {
     "save_figure": "plots",
     "write_report": "html",
     "rebuild_report": "html",
-    "collect_warnings": "html",
+    "render_report": "html",
+    "plot_plan": "plots",
     "check_results": "validate",
 }
 

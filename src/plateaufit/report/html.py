@@ -10,6 +10,9 @@ All text from the results (fit and observable names above all) is escaped.
 The page is built from a results dict only; nothing is refitted.
 :func:`rebuild_report` remakes tables, plots and page from a run's
 results.json.
+
+One module of about 500 lines: the page's sections share the escaping and number
+helpers and one stylesheet; split per section, each file would import them all back.
 """
 
 from __future__ import annotations
@@ -28,7 +31,8 @@ from typing import Any
 from plateaufit import __version__
 from plateaufit.atomic import write_text
 from plateaufit.errors import DataError
-from plateaufit.report.plots import figure_png, make_all_plots, plot_plan
+from plateaufit.pipeline.results import Results, as_float
+from plateaufit.report.plots import as_results, figure_png, make_all_plots, plot_plan
 from plateaufit.report.tables import (
     chosen_range_text,
     format_value_error,
@@ -38,13 +42,7 @@ from plateaufit.report.tables import (
 )
 from plateaufit.report.validate import check_results
 
-__all__ = ["write_report", "rebuild_report", "collect_warnings", "LOW_P_VALUE",
-           "STRONG_SHRINKAGE"]
-
-#: A chosen fit with a p-value below this is flagged.
-LOW_P_VALUE = 0.05
-#: A covariance shrinkage intensity above this is flagged.
-STRONG_SHRINKAGE = 0.5
+__all__ = ["write_report", "rebuild_report", "render_report"]
 
 _CSS = """
 :root { --ink:#1d2330; --muted:#5b6372; --line:#d8dce3; --band:#f4f6f9;
@@ -96,13 +94,7 @@ def _e(x: Any) -> str:
     return html.escape("" if x is None else str(x), quote=True)
 
 
-def _num(x: Any) -> float:
-    if x is None or isinstance(x, bool):
-        return math.nan
-    try:
-        return float(x)
-    except (TypeError, ValueError):
-        return math.nan
+_num = as_float
 
 
 def _fmt(x: Any, spec: str = ".4g") -> str:
@@ -134,78 +126,9 @@ def _kv_table(rows: Sequence[tuple[str, str]]) -> str:
 
 # --------------------------------------------------------------------- warnings
 
-def _mentioned(messages: Sequence[str], *words: str) -> bool:
-    low = [m.lower() for m in messages]
-    return any(all(w.lower() in m for w in words) for m in low)
-
-
-def collect_warnings(results: Mapping[str, Any]) -> list[str]:
-    """Every warning the page shows, in order, without repeats.
-
-    The results' own ``warnings`` and each fit's ``warnings`` come first. The
-    report then adds what the results show but no message mentions yet:
-    a chosen (or highest-weight) fit with p-value below :data:`LOW_P_VALUE`,
-    a tau_int whose window was not found (``reliable`` false), a shrinkage
-    intensity above :data:`STRONG_SHRINKAGE`, scan points that did not converge,
-    and jackknife refits that failed.
-
-    Parameters
-    ----------
-    results : mapping
-        The results dict.
-
-    Returns
-    -------
-    list of str
-    """
-    messages: list[str] = []
-
-    def add(message: str) -> None:
-        if message not in messages:
-            messages.append(message)
-
-    for m in results.get("warnings") or []:
-        add(str(m))
-    fits = results.get("fits") or {}
-    for fit in fits.values():
-        for m in fit.get("warnings") or []:
-            add(str(m))
-    existing = list(messages)
-    ens = results.get("ensemble") or {}
-    for name, tau in (ens.get("tau_int") or {}).items():
-        if tau and tau.get("reliable") is False and not (
-                _mentioned(existing, name, "tau_int") or _mentioned(existing, name, "window")):
-            add(f"{name}: no autocorrelation window was found; tau_int = "
-                f"{_fmt(tau.get('value'), '.3g')} is a lower bound (the chain is short for "
-                "its autocorrelation)")
-    for fit_name, fit in fits.items():
-        chosen = fit.get("chosen") or {}
-        p = _num(chosen.get("p_value"))
-        which = "highest-weight" if chosen.get("method") == "average" else "chosen"
-        if p < LOW_P_VALUE and not _mentioned(existing, fit_name, "p-value"):
-            add(f"fit {fit_name}: the {which} fit has p-value {p:.3g} (below {LOW_P_VALUE})")
-        if chosen.get("converged") is False and not _mentioned(existing, fit_name, "chosen",
-                                                               "converge"):
-            add(f"fit {fit_name}: the chosen fit did not converge")
-        lam = _num((fit.get("covariance") or {}).get("shrinkage"))
-        if lam > STRONG_SHRINKAGE and not _mentioned(existing, fit_name, "shrinkage"):
-            add(f"fit {fit_name}: strong covariance shrinkage ({lam:.2f}); the covariance is "
-                "poorly determined by the bins: more configurations would help")
-        scan = fit.get("scan") or []
-        failed = sum(1 for pt in scan if pt.get("converged") is False)
-        if failed and not _mentioned(existing, fit_name, "scan point", "converge"):
-            add(f"fit {fit_name}: {failed} of {len(scan)} scan points did not converge")
-        refits = sum(int(_num(pt.get("n_refit_failed")) or 0) for pt in scan
-                     if math.isfinite(_num(pt.get("n_refit_failed"))))
-        if refits and not _mentioned(existing, fit_name, "refit"):
-            add(f"fit {fit_name}: {refits} jackknife refit(s) failed")
-    return messages
-
-
-# --------------------------------------------------------------------- sections
-
-def _section_warnings(results: Mapping[str, Any]) -> str:
-    messages = collect_warnings(results)
+def _section_warnings(typed: Results) -> str:
+    """The run's warnings table (decided by plateaufit.pipeline.warnings), rendered."""
+    messages = [w.message for w in typed.warnings]
     if not messages:
         return '<section id="warnings"><h2>Warnings</h2><p class="ok">No warnings.</p></section>'
     items = "".join(f"<li>{_e(m)}</li>" for m in messages)
@@ -370,9 +293,9 @@ def _png_size(data: bytes) -> tuple[int, int] | None:
     return struct.unpack(">II", data[16:24])
 
 
-def _section_plots(results: Mapping[str, Any],
+def _section_plots(typed: Results,
                    figures: Mapping[str, Sequence[Path]] | None) -> str:
-    plan = plot_plan(results)
+    plan = plot_plan(typed)
     out = ['<section id="plots"><h2>Plots</h2>']
     if figures is not None and not figures:
         out.append('<p class="note">No plots were drawn for this page.</p></section>')
@@ -483,10 +406,13 @@ def _section_provenance(results: Mapping[str, Any]) -> str:
 
 # --------------------------------------------------------------------- the page
 
-def render_report(results: Mapping[str, Any],
+def render_report(results: Results | Mapping[str, Any],
                   figures: Mapping[str, Sequence[Path]] | None = None) -> str:
     """The report page as HTML text (see :func:`write_report`)."""
+    typed = results if isinstance(results, Results) else None
+    results = typed.to_dict() if typed is not None else results
     check_results(results, "results")
+    typed = typed if typed is not None else as_results(results)
     ens = results.get("ensemble") or {}
     prov = results.get("provenance") or {}
     title = f"plateaufit report: {ens.get('name', 'ensemble')}"
@@ -500,8 +426,8 @@ def render_report(results: Mapping[str, Any],
              ("scan", "Scans"), ("provenance", "Provenance")]
     nav = "".join(f'<a href="#{a}">{t}</a>' for a, t in links)
     body = "".join([
-        _section_warnings(results), _section_data(results), _section_results(results),
-        derived, _section_plots(results, figures), _section_scans(results),
+        _section_warnings(typed), _section_data(results), _section_results(results),
+        derived, _section_plots(typed, figures), _section_scans(results),
         _section_provenance(results),
     ])
     return (
@@ -514,14 +440,14 @@ def render_report(results: Mapping[str, Any],
     )
 
 
-def write_report(results: Mapping[str, Any], out_dir: str | os.PathLike[str], *,
+def write_report(results: Results | Mapping[str, Any], out_dir: str | os.PathLike[str], *,
                  figures: Mapping[str, Sequence[Path]] | None = None) -> Path:
     """Write the self-contained report page ``OUT_DIR/report.html``.
 
     Parameters
     ----------
-    results : mapping
-        The results dict (the layout of results.json).
+    results : Results or mapping
+        Typed results, or a results dict (the layout of results.json).
     out_dir : path-like
         The run's output directory.
     figures : mapping, optional

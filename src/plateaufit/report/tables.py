@@ -47,6 +47,7 @@ from pathlib import Path
 from typing import Any
 
 from plateaufit.atomic import write_text
+from plateaufit.pipeline.results import Results
 
 __all__ = [
     "format_value_error",
@@ -451,7 +452,8 @@ def file_stem(name: str) -> str:
     return cleaned or "unnamed"
 
 
-def write_tables(results: Mapping[str, Any], out_dir: str | os.PathLike[str]) -> list[Path]:
+def write_tables(results: Results | Mapping[str, Any],
+                 out_dir: str | os.PathLike[str]) -> list[Path]:
     """Write ``scan_FIT.csv`` for every fit and ``results.tex`` into ``out_dir``.
 
     Each file is written atomically. ``FIT`` is the fit's name made safe for a
@@ -460,8 +462,8 @@ def write_tables(results: Mapping[str, Any], out_dir: str | os.PathLike[str]) ->
 
     Parameters
     ----------
-    results : mapping
-        The results dict.
+    results : Results or mapping
+        Typed results, or the results dict (the tables are made from its layout).
     out_dir : path-like
         The run's output directory.
 
@@ -470,6 +472,8 @@ def write_tables(results: Mapping[str, Any], out_dir: str | os.PathLike[str]) ->
     list of Path
         The files written, the CSV files first.
     """
+    if isinstance(results, Results):
+        results = results.to_dict()
     out = Path(out_dir)
     written: list[Path] = []
     used: set[str] = set()

@@ -21,6 +21,10 @@ References
    Carlo method for the self-avoiding walk", J. Stat. Phys. 50 (1988) 109.
 .. [3] H. Flyvbjerg, H. G. Petersen, "Error estimates on averages of correlated
    data", J. Chem. Phys. 91 (1989) 461.
+
+One module of about 600 lines on purpose: tau_int, its derived-quantity form, the
+binning study and the bin-size rule share the windowing and the stream handling, and
+the rule is justified against the estimator it sizes.
 """
 
 from __future__ import annotations
@@ -536,7 +540,7 @@ def binning_study(
         binned = bin_samples(x, int(size), streams)
         if binned.shape[0] < 2:
             raise DataError(
-                "binning.size",
+                "sizes",
                 f"bin size {int(size)} leaves {binned.shape[0]} bin; a binning study needs at least 2 bins per size",
             )
         errors.append(jackknife_error(jackknife_samples(binned)))
@@ -616,12 +620,12 @@ def choose_bin_size(
     t = np.asarray(taus, dtype=float).reshape(-1)
     t = t[np.isfinite(t)]
     if t.size == 0:
-        raise DataError("binning.size", "no finite tau_int to choose a bin size from; give binning.size as an integer")
+        raise DataError("taus", "no finite tau_int to choose a bin size from; give the bin size explicitly")
     if not (math.isfinite(factor) and factor > 0):
         raise SpecError("", f"factor must be a positive number, got {factor!r}")
     lengths = np.asarray(n_configs, dtype=int).reshape(-1)
     if lengths.size == 0 or np.any(lengths < 0) or lengths.sum() == 0:
-        raise DataError("binning.size", f"no configurations to bin (counts {lengths.tolist()})")
+        raise DataError("n_configs", f"no configurations to bin (counts {lengths.tolist()})")
     tau = max(float(t.max()), 0.5)
     wanted = max(1, math.ceil(factor * (tau - 1.0 / (4.0 * tau)) - 1e-12))
     if _n_bins(lengths, wanted) >= min_bins:

@@ -34,6 +34,10 @@ References
 .. [3] J. Schäfer, K. Strimmer, "A shrinkage approach to large-scale covariance
    matrix estimation and implications for functional genomics",
    Stat. Appl. Genet. Mol. Biol. 4 (2005) 32 (shrinking the correlation matrix).
+
+One module of about 600 lines on purpose: the shrinkage intensities, the targets, the
+eigenvalue floor and the per-sample covariances are one estimator with options, and
+the checks against scikit-learn test them together.
 """
 
 from __future__ import annotations
@@ -116,7 +120,7 @@ def _parse_shrinkage(shrinkage: str | float | None) -> str | float:
         if 0.0 <= value <= 1.0:
             return value
     raise SpecError(
-        "covariance.shrinkage",
+        "shrinkage",
         f"unknown shrinkage {shrinkage!r}; use none, ledoit-wolf, oas or a number in [0, 1]",
     )
 
@@ -124,7 +128,7 @@ def _parse_shrinkage(shrinkage: str | float | None) -> str | float:
 def _parse_target(target: str) -> str:
     if isinstance(target, str) and target.strip().lower() in _TARGETS:
         return target.strip().lower()
-    raise SpecError("covariance.target", f"unknown shrinkage target {target!r}; use diagonal or identity")
+    raise SpecError("target", f"unknown shrinkage target {target!r}; use diagonal or identity")
 
 
 def _parse_floor(floor: float | None) -> float | None:
@@ -137,7 +141,7 @@ def _parse_floor(floor: float | None) -> float | None:
     ):
         return float(floor)
     raise SpecError(
-        "covariance.eigenvalue_floor",
+        "eigenvalue_floor",
         f"eigenvalue_floor must be a number between 0 and 1 (a fraction of the largest "
         f"eigenvalue of the correlation matrix, e.g. 1e-3), got {floor!r}",
     )
@@ -151,7 +155,7 @@ def _check_samples(samples: np.ndarray) -> np.ndarray:
         raise FitError("", f"the covariance needs samples of shape (n_bins, n_points), got {x.shape}")
     n, p = x.shape
     if n < 2:
-        raise FitError("", f"the covariance of {p} points needs at least 2 bins, got {n}; use a smaller binning.size")
+        raise FitError("", f"the covariance of {p} points needs at least 2 bins, got {n}; use a smaller bin size")
     if not np.all(np.isfinite(x)):
         i, j = np.argwhere(~np.isfinite(x))[0]
         raise FitError("", f"bin {i} of point {j} is NaN or infinite; the covariance cannot be estimated")
@@ -324,8 +328,8 @@ def _singular_error(n_bins: int, p: int, detail: str) -> FitError:
     return FitError(
         "",
         f"the covariance of the mean of {p} points from {n_bins} bins is singular ({detail}); "
-        "use covariance.shrinkage: ledoit-wolf, fewer timeslices, or more bins "
-        "(a smaller binning.size)",
+        "use shrinkage 'ledoit-wolf', fewer timeslices, or more bins "
+        "(a smaller bin size)",
     )
 
 
@@ -372,7 +376,7 @@ def covariance_of_mean(
         constant across bins, naming it; with fewer than 2 bins.
     SpecError
         For an unknown ``shrinkage``, ``target`` or a bad ``eigenvalue_floor``
-        (``where`` is the spec key).
+        (``where`` is the argument's name).
 
     References
     ----------

@@ -169,10 +169,10 @@ def effective_mass(
         return np.where(valid, log_r, np.nan)
 
     if time_extent is None:
-        raise SpecError("ensemble.time_extent", f"the {kind} effective mass needs the time extent T of the lattice")
+        raise SpecError("time_extent", f"the {kind} effective mass needs the time extent T of the lattice")
     T = float(time_extent)
     if not np.isfinite(T) or T <= 0:
-        raise SpecError("ensemble.time_extent", f"time extent must be a positive integer, got {time_extent!r}")
+        raise SpecError("time_extent", f"time extent must be a positive integer, got {time_extent!r}")
     n_t = c.shape[-1]
     t = np.arange(n_t - 1, dtype=float)
     a = T / 2.0 - t

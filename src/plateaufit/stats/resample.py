@@ -60,7 +60,7 @@ def stream_blocks(streams: np.ndarray | None, n: int) -> list[tuple[int, int]]:
     labels = np.asarray(streams).reshape(-1)
     if labels.shape[0] != n:
         raise DataError(
-            "ensemble.streams",
+            "streams",
             f"{labels.shape[0]} stream labels for {n} configurations; give exactly "
             "one label per configuration (or stream counts that add up to the "
             "number of configurations)",
@@ -78,14 +78,14 @@ def _check_size(size: object) -> int:
             size = int(size)
         else:
             raise DataError(
-                "binning.size",
+                "size",
                 f"bin size must be a positive integer, got {size!r}; "
                 "use an integer >= 1 or 'auto'",
             )
     size = int(size)
     if size < 1:
         raise DataError(
-            "binning.size",
+            "size",
             f"bin size must be at least 1, got {size}; use an integer >= 1 or 'auto'",
         )
     return size
@@ -123,7 +123,7 @@ def bin_samples(
     Raises
     ------
     DataError
-        ``where="binning.size"`` when the size is not a positive integer or
+        ``where="size"`` when the size is not a positive integer or
         exceeds the length of every stream (no bin could be formed).
 
     References
@@ -148,7 +148,7 @@ def bin_samples(
     if not pieces:
         longest = max((b - a for a, b in blocks), default=0)
         raise DataError(
-            "binning.size",
+            "size",
             f"bin size {size} is larger than every stream (the longest has {longest} "
             f"configurations), so no bin can be formed; choose a size <= {longest}",
         )
@@ -219,7 +219,7 @@ def jackknife_samples(data: np.ndarray) -> np.ndarray:
         raise DataError(
             "",
             f"the jackknife needs at least 2 bins, got {n}; use more configurations "
-            "or a smaller binning.size",
+            "or a smaller bin size",
         )
     n = data.shape[0]
     return (data.sum(axis=0) - data) / (n - 1)

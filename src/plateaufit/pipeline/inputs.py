@@ -12,10 +12,11 @@ from pathlib import Path
 
 from plateaufit.data.ensemble import Ensemble, align_observables
 from plateaufit.data.loaders import RawCorrelator, load_correlator
-from plateaufit.errors import DataError, SpecError
-from plateaufit.spec.schema import Spec
+from plateaufit.errors import DataError
+from plateaufit.pipeline.keys import located
+from plateaufit.specfile import Spec
 
-__all__ = ["load_ensemble", "data_checksums", "observable_file"]
+__all__ = ["load_ensemble", "data_checksums", "observable_file", "file_sha256"]
 
 
 def observable_file(spec: Spec, name: str) -> Path:
@@ -43,17 +44,12 @@ def observable_file(spec: Spec, name: str) -> Path:
 def load_ensemble(spec: Spec) -> Ensemble:
     """Load, fold and align every observable of ``spec``.
 
-    Parameters
-    ----------
-    spec : Spec
-        A validated spec (:func:`plateaufit.spec.schema.load_spec`).
-
     Returns
     -------
     Ensemble
         Correlators aligned by configuration, folded per observable
         (``boundary``, ``fold``), with the streams of the files or of
-        ``ensemble.streams``.
+        ``ensemble.streams`` (the stream sizes).
 
     Raises
     ------
@@ -80,14 +76,15 @@ def load_ensemble(spec: Spec) -> Ensemble:
         raws[name] = raw
         key_of_source.setdefault(str(raw.source), key)
     try:
-        return align_observables(
-            raws,
-            name=spec.ensemble.name,
-            time_extent=T,
-            stream_counts=spec.ensemble.streams,
-            boundaries={n: o.boundary for n, o in spec.observables.items()},
-            fold={n: o.folds for n, o in spec.observables.items()},
-        )
+        with located():
+            return align_observables(
+                raws,
+                name=spec.ensemble.name,
+                time_extent=T,
+                stream_counts=spec.ensemble.stream_sizes,
+                boundaries={n: o.boundary for n, o in spec.observables.items()},
+                fold={n: o.folds for n, o in spec.observables.items()},
+            )
     except DataError as err:
         where = key_of_source.get(err.where, err.where)
         if where == err.where:
@@ -96,13 +93,7 @@ def load_ensemble(spec: Spec) -> Ensemble:
 
 
 def data_checksums(spec: Spec) -> dict[str, str]:
-    """SHA-256 (hex) of every observable's data file, for provenance.
-
-    Returns
-    -------
-    dict
-        NAME -> hex digest of the file's bytes.
-    """
+    """SHA-256 (hex) of every observable's data file, for provenance (NAME -> digest)."""
     return {name: file_sha256(observable_file(spec, name), f"observables.{name}.file")
             for name in spec.observables}
 
@@ -117,45 +108,3 @@ def file_sha256(path: Path, where: str = "") -> str:
     except OSError as exc:
         raise DataError(where or str(path), f"cannot read {path} ({exc.strerror or exc})") from None
     return digest.hexdigest()
-
-
-def check_bin_size(bin_size: int, counts: list[int]) -> None:
-    """Refuse a bin size that empties a stream or leaves too few bins for a jackknife.
-
-    Parameters
-    ----------
-    bin_size : int
-        Configurations per bin.
-    counts : list of int
-        Configurations in each stream (bins never cross a stream boundary).
-
-    Raises
-    ------
-    SpecError
-        At ``binning.size``, naming the short streams and the largest usable size.
-    """
-    short = [i for i, n in enumerate(counts) if n < bin_size]
-    n_bins = sum(n // bin_size for n in counts)
-    if short:
-        listed = ", ".join(f"stream {i} has {counts[i]}" for i in short)
-        raise SpecError("binning.size", f"bins of {bin_size} configurations do not fit in every "
-                        f"stream ({listed}); choose a size of at most {min(counts)} "
-                        "or `auto`")
-    if n_bins < 2:
-        raise SpecError("binning.size", f"bins of {bin_size} give {n_bins} bin(s); a jackknife "
-                        "needs at least 2 -- choose a smaller size or `auto`")
-
-
-def minimum_bins(spec: Spec) -> int:
-    """Fewest bins ``binning.size: auto`` may leave.
-
-    20 bins (common practice: fewer make the jackknife covariance too noisy to
-    invert), and with ``covariance.shrinkage: none`` more bins than the
-    largest fit of the spec has data points, or its covariance is singular.
-    """
-    least = 20
-    if spec.covariance.shrinkage == "none":
-        for fit in spec.fits:
-            span = max(fit.tmax_values) - min(fit.tmin_values) + 1
-            least = max(least, span * len(fit.observables) + 1)
-    return least
