@@ -60,8 +60,8 @@ def measure_scan(data, n_lmfit_fits: int, *, profile: bool = False, replay: bool
     for (_, a), (_, b) in zip(lm_results, b_results):
         ok = a.converged & b.converged
         if ok.any():
-            sigma = np.nanstd(a.physical[ok], axis=0) * np.sqrt(ok.sum())
-            agreement = max(agreement, float(np.nanmax(np.abs(b.physical[ok] - a.physical[ok])
+            sigma = np.nanstd(a.reported[ok], axis=0) * np.sqrt(ok.sum())
+            agreement = max(agreement, float(np.nanmax(np.abs(b.reported[ok] - a.reported[ok])
                                                        / sigma)))
     out = {
         "n_fits": len(fits), "n_refits": clock.refits, "n_fallback": clock.fallbacks,

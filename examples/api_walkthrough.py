@@ -159,8 +159,8 @@ for t, m, e in zip(em.t, em.value, em.error):
 fit = pf.fit_correlator({"kestrel": binned}, form="cosh", states=2, tmin=TMIN, tmax=TMAX,
                         time_extent=T)
 c = fit.central
-E0, dE0 = c.physical["E0"], fit.errors["E0"]
-E1, dE1 = c.physical["E1"], fit.errors["E1"]
+E0, dE0 = c.reported["E0"], fit.errors["E0"]
+E1, dE1 = c.reported["E1"], fit.errors["E1"]
 print(f"two-state cosh fit t = {TMIN}..{TMAX}: chi2/dof = {c.chi2:.2f}/{c.dof}, "
       f"p = {c.p_value:.2f}, converged {fit.converged}")
 print(f"  E0 = {E0:.5f} +- {dE0:.5f}   (truth {TRUTH['E0']}, pull "
@@ -178,14 +178,14 @@ print(f"  E1 = {E1:.4f} +- {dE1:.4f}   (truth {TRUTH['E1']}, pull "
 # %%
 fits = pf.scan({"kestrel": binned}, tmin=[3, 7, 2], tmax=TMAX, states=[1, 2], form="cosh",
                time_extent=T)
-central = np.array([[f.central.physical["E0"]] for f in fits])
+central = np.array([[f.central.reported["E0"]] for f in fits])
 samples = np.stack([f.samples[:, [f.names.index("E0")]] for f in fits])
 avg = pf.model_average(central, samples, [f.central.aic for f in fits],
                        [f.converged for f in fits], ["E0"])
 print("scan: states tmin tmax   chi2/dof   AIC     weight  E0")
 for f, w in zip(fits, avg.weights):
     print(f"      {f.states:6d} {f.tmin:4d} {f.tmax:4d} {f.central.chi2:6.1f}/{f.central.dof:<3d} "
-          f"{f.central.aic:7.1f} {w:7.3f}  {f.central.physical['E0']:.5f} +- {f.errors['E0']:.5f}")
+          f"{f.central.aic:7.1f} {w:7.3f}  {f.central.reported['E0']:.5f} +- {f.errors['E0']:.5f}")
 print(f"model average: E0 = {avg.value['E0']:.5f} +- {avg.error['E0']:.5f} "
       f"(stat {avg.stat_error['E0']:.5f}, sys {avg.sys_error['E0']:.5f}); truth {TRUTH['E0']}")
 

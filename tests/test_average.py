@@ -101,8 +101,8 @@ def test_a_fit_with_a_non_positive_ground_state_gets_no_weight():
 
     def fake(e0, aic):
         samples = e0 + 1e-3 * rng.standard_normal((20, 1))
-        return SimpleNamespace(model=SimpleNamespace(physical_names=("E0",)),
-                               central=SimpleNamespace(physical={"E0": e0}, aic=aic),
+        return SimpleNamespace(model=SimpleNamespace(reported_names=("E0",)),
+                               central=SimpleNamespace(reported={"E0": e0}, aic=aic),
                                samples=samples, converged=True)
 
     fits = [fake(0.30, 10.0), fake(-0.05, 2.0), fake(0.31, 11.0)]

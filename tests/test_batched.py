@@ -30,7 +30,7 @@ def problem():
     rng = np.random.default_rng(2024)
     t = np.arange(3, 16)
     model = make_model("cosh", 2, ["pi"], {"pi": t}, T)
-    centre = model.predict(model.from_physical(TRUTH))
+    centre = model.predict(model.from_reported(TRUTH))
     eps = rng.standard_normal((N_CFG, t.size))
     for i in range(1, t.size):
         eps[:, i] = 0.6 * eps[:, i - 1] + 0.8 * eps[:, i]
@@ -43,7 +43,7 @@ def problem():
         return solve_triangular(chol, model.predict(theta) - x.mean(axis=0), lower=True)
 
     start = scipy.optimize.least_squares(
-        residual, model.from_physical(TRUTH), method="lm", xtol=1e-15, ftol=1e-15,
+        residual, model.from_reported(TRUTH), method="lm", xtol=1e-15, ftol=1e-15,
         jac=lambda th: solve_triangular(chol, model.jacobian(th), lower=True)).x
     return model, x, y_samples, cov, chol, start
 
@@ -55,9 +55,9 @@ def test_all_samples_converge_and_move_off_the_start(problem):
     assert converged.dtype == bool and converged.all()
     # each sample has its own minimum, near but not at the central fit
     assert np.all(np.any(theta != start, axis=1))
-    spread = np.std(model.to_physical(theta), axis=0)
+    spread = np.std(model.to_reported(theta), axis=0)
     assert np.all(spread > 0)
-    assert np.allclose(model.to_physical(theta).mean(axis=0), model.to_physical(start),
+    assert np.allclose(model.to_reported(theta).mean(axis=0), model.to_reported(start),
                        rtol=1e-3)
 
 
@@ -103,7 +103,7 @@ def test_warm_start_shared_or_per_sample_gives_the_same_refits(problem):
     scattered = start + 1e-3 * np.abs(start) * rng.standard_normal((N_CFG, 4))
     moved, ok3 = batched_refits(y_samples, model, scattered, chol=chol)
     assert ok3.all()
-    np.testing.assert_allclose(model.to_physical(moved), model.to_physical(shared),
+    np.testing.assert_allclose(model.to_reported(moved), model.to_reported(shared),
                                rtol=1e-9)
 
 
@@ -162,14 +162,14 @@ def test_a_narrow_prior_pins_its_parameter(problem):
     theta, converged = batched_refits(y_samples, model, start, chol=chol,
                                       priors={"E1": (pinned, 1e-7)})
     assert converged.all()
-    e1 = model.to_physical(theta)[:, 1]
+    e1 = model.to_reported(theta)[:, 1]
     np.testing.assert_allclose(e1, pinned, atol=1e-6)
 
 
 def test_samples_ending_on_a_bound_fall_back(problem):
     model, x, y_samples, cov, chol, start = problem
     free, _ = batched_refits(y_samples, model, start, chol=chol)
-    a0 = model.to_physical(free)[:, 2]
+    a0 = model.to_reported(free)[:, 2]
     cut = float(np.median(a0))
     # A bound through the middle of the samples' A0 values: the samples whose
     # free minimum lies beyond it end on the bound and must be reported.
@@ -180,7 +180,7 @@ def test_samples_ending_on_a_bound_fall_back(problem):
     assert not converged[beyond].any()
     assert converged[~beyond].all()
     np.testing.assert_allclose(theta[~beyond], free[~beyond], rtol=1e-10)
-    assert np.all(model.to_physical(theta)[:, 2] <= cut)
+    assert np.all(model.to_reported(theta)[:, 2] <= cut)
 
 
 def test_unknown_prior_or_bound_names_are_errors(problem):
@@ -214,7 +214,7 @@ def test_seam_in_correlated_uses_the_engine_without_fallback(problem):
     fast = jackknife_refits(y_samples, model, start, cov=cov, engine="batched")
     assert fast.engine == "batched" and fast.n_fallback == 0 and fast.converged.all()
     slow = jackknife_refits(y_samples[:6], model, start, cov=cov, engine="lmfit")
-    np.testing.assert_allclose(fast.physical[:6], slow.physical, rtol=1e-8)
+    np.testing.assert_allclose(fast.reported[:6], slow.reported, rtol=1e-8)
 
 
 class _FusedModel:

@@ -21,7 +21,7 @@ def _problem(seed=0, noise=0.02, states=2, t=np.arange(2.0, 16.0)):
     model = make_model("cosh", states, ["a"], {"a": t}, T)
     truth = np.array([0.3, 0.8, 1.0, 0.5][: 2 * states]) if states == 2 else \
         np.array([0.3, 1.0])
-    clean = model.predict(model.from_physical(truth))
+    clean = model.predict(model.from_reported(truth))
     cov = np.outer(noise * clean, noise * clean) * 0.6 ** np.abs(np.subtract.outer(t, t))
     y = clean + rng.multivariate_normal(np.zeros(t.size), cov)
     return model, y, cov, t, truth
@@ -34,7 +34,7 @@ def _binned(seed=1, n_bins=50, n_t=17, states=2, noise=0.04, names=("pion",)):
     for i, name in enumerate(names):
         model = make_model("cosh", states, [name], {name: t}, T)
         phys = [0.3, 0.8, 1.0 + i, 0.5][: 2 * states] if states == 2 else [0.3, 1.0 + i]
-        clean = model.predict(model.from_physical(np.array(phys)))
+        clean = model.predict(model.from_reported(np.array(phys)))
         corr = 0.7 ** np.abs(np.subtract.outer(t, t))
         out[name] = clean * (1 + noise * rng.multivariate_normal(np.zeros(n_t), corr,
                                                                   size=n_bins))
@@ -56,7 +56,7 @@ def test_tight_prior_pins_the_parameter():
     model, y, cov, t, _ = _problem()
     fit = correlated_fit(y, cov, model, starting_values(model, y, t),
                          priors={"E1": (1.2, 1e-6)})
-    assert abs(fit.physical["E1"] - 1.2) < 1e-5
+    assert abs(fit.reported["E1"] - 1.2) < 1e-5
     assert fit.chi2_prior > 0 and np.isclose(fit.chi2, fit.chi2_data + fit.chi2_prior)
     assert np.sqrt(fit.param_covariance[1, 1]) < 2e-6
 
@@ -81,8 +81,8 @@ def test_bound_on_e0_is_respected_and_start_moved_inside():
     model, y, cov, t, _ = _problem()
     fit = correlated_fit(y, cov, model, starting_values(model, y, t),
                          bounds={"E0": (0.31, 0.5)})
-    assert fit.converged and 0.31 <= fit.physical["E0"] <= 0.5
-    assert fit.physical["E0"] == pytest.approx(0.31, abs=1e-6)   # truth 0.3 is outside
+    assert fit.converged and 0.31 <= fit.reported["E0"] <= 0.5
+    assert fit.reported["E0"] == pytest.approx(0.31, abs=1e-6)   # truth 0.3 is outside
 
 
 def test_bounds_on_higher_energies_act_on_gaps():
@@ -128,7 +128,7 @@ def test_lmfit_refits_reproduce_the_central_fit_of_each_sample():
         one = correlated_fit(samples[s], cov, model, central.theta)
         # both minimisers stop within a small fraction of a standard error of
         # the minimum (the central fit at CENTRAL_STAT_TOL, lmfit at its tol)
-        assert np.all(np.abs(refit.physical[s] - one.values) <= 1e-4 * sigma)
+        assert np.all(np.abs(refit.reported[s] - one.values) <= 1e-4 * sigma)
 
 
 def test_batched_engine_agrees_with_lmfit_loop():
@@ -145,10 +145,10 @@ def test_batched_engine_agrees_with_lmfit_loop():
     # the engine's statistical stopping rule: within STAT_TOL (1e-5) standard
     # errors of the minimum, extrapolated; lmfit is much closer here
     sigma = np.sqrt(np.diag(central.param_covariance))
-    assert np.all(np.abs(b.physical - a.physical) <= 2e-5 * sigma)
+    assert np.all(np.abs(b.reported - a.reported) <= 2e-5 * sigma)
     # without the statistical rule the engine iterates to the rounding floor
     c = jackknife_refits(samples, model, central.theta, cov=cov, engine="batched", stol=None)
-    np.testing.assert_allclose(c.physical, a.physical, rtol=1e-8)
+    np.testing.assert_allclose(c.reported, a.reported, rtol=1e-8)
 
 
 def test_refits_with_a_broken_sample_covariance_fail_that_sample_only():
@@ -160,7 +160,7 @@ def test_refits_with_a_broken_sample_covariance_fail_that_sample_only():
     refit = jackknife_refits(samples, model, central.theta, cov_samples=cov_s,
                              engine="lmfit")
     assert refit.converged.tolist() == [True, True, False, True]
-    assert np.all(np.isnan(refit.physical[2])) and refit.n_failed == 1
+    assert np.all(np.isnan(refit.reported[2])) and refit.n_failed == 1
     with pytest.raises(FitError, match="exactly one"):
         jackknife_refits(samples, model, central.theta)
     with pytest.raises(FitError) as err:
@@ -179,12 +179,12 @@ def test_per_sample_covariances_flag_nan_and_indefinite_samples_alike(engine):
     central = correlated_fit(y, cov, model, starting_values(model, y, t))
     refit = jackknife_refits(samples, model, central.theta, cov_samples=cov_s, engine=engine)
     assert refit.converged.tolist() == [True, False, True, False, True]
-    assert np.isnan(refit.physical[[1, 3]]).all()
+    assert np.isnan(refit.reported[[1, 3]]).all()
     # every other sample is the correlated fit of its data with its own covariance
     for s in (0, 2, 4):
         one = correlated_fit(samples[s], cov_s[s], model, central.theta)
         sigma = np.sqrt(np.diag(one.param_covariance))
-        assert np.all(np.abs(refit.physical[s] - one.values) <= 1e-4 * sigma)
+        assert np.all(np.abs(refit.reported[s] - one.values) <= 1e-4 * sigma)
 
 
 def test_fit_correlator_records_what_results_need():
@@ -216,12 +216,12 @@ def test_fit_correlator_plain_array_and_factorised():
     rng = np.random.default_rng(9)
     t = np.arange(17)
     ops = {"ll": ("l", "l"), "ls": ("l", "s"), "ss": ("s", "s")}
-    model = make_model("cosh", 1, list(ops), {k: t for k in ops}, T, factorised=ops)
+    model = make_model("cosh", 1, list(ops), {k: t for k in ops}, T, operators=ops)
     clean = model.predict(np.array([0.4, 1.2, 0.7])).reshape(3, -1)
     binned = {k: clean[i] * (1 + 0.02 * rng.normal(size=(40, 17)))
               for i, k in enumerate(ops)}
     fit = fit_correlator(binned, form="cosh", states=1, tmin=3, tmax=12, time_extent=T,
-                         factorised=ops, engine="lmfit")
+                         operators=ops, engine="lmfit")
     assert fit.names == ("E0", "Z0.l", "Z0.s") and fit.converged
     assert abs(abs(fit.values["Z0.l"]) - 1.2) < 4 * fit.errors["Z0.l"]
     single = fit_correlator(binned["ll"], form="cosh", states=1, tmin=3, tmax=12,

@@ -32,7 +32,7 @@ def test_single_state_start_is_the_truth(form):
     t = np.arange(3, 14)
     m = make_model(form, 1, ["a"], {"a": t}, T)
     y = m.predict(np.array([0.42, 1.3]))
-    np.testing.assert_allclose(m.to_physical(starting_values(m, y, t)), [0.42, 1.3],
+    np.testing.assert_allclose(m.to_reported(starting_values(m, y, t)), [0.42, 1.3],
                                rtol=1e-8)
 
 
@@ -40,8 +40,8 @@ def test_two_state_start_is_ordered_and_close():
     t = np.arange(1, 16)
     m = make_model("cosh", 2, ["a", "b"], {"a": t, "b": t}, T)
     truth = np.array([0.3, 0.9, 1.0, 2.0, 0.6, -0.5])
-    y = m.predict(m.from_physical(truth))
-    phys = m.to_physical(starting_values(m, {"a": y[:15], "b": y[15:]}, {"a": t, "b": t}))
+    y = m.predict(m.from_reported(truth))
+    phys = m.to_reported(starting_values(m, {"a": y[:15], "b": y[15:]}, {"a": t, "b": t}))
     assert phys[0] < phys[1]
     assert abs(phys[0] - 0.3) < 0.02          # ground state from the later half
     np.testing.assert_allclose(phys[2:4], truth[2:4], rtol=0.1)
@@ -51,7 +51,7 @@ def test_negative_correlator_gives_negative_amplitude():
     t = np.arange(2, 10)
     m = make_model("exp", 1, ["a"], {"a": t}, T)
     y = m.predict(np.array([0.5, -3.0]))
-    np.testing.assert_allclose(m.to_physical(starting_values(m, y, t)), [0.5, -3.0],
+    np.testing.assert_allclose(m.to_reported(starting_values(m, y, t)), [0.5, -3.0],
                                rtol=1e-8)
 
 
@@ -69,10 +69,10 @@ def test_noise_and_garbage_never_give_nan():
 def test_factorised_start_recovers_overlaps_and_signs():
     ops = {"ll": ("l", "l"), "ls": ("l", "s"), "ss": ("s", "s")}
     t = np.arange(3, 12)
-    m = make_model("exp", 1, list(ops), {k: t for k in ops}, T, factorised=ops)
+    m = make_model("exp", 1, list(ops), {k: t for k in ops}, T, operators=ops)
     truth = np.array([0.4, 1.2, -0.8])
     y = m.predict(truth).reshape(3, -1)
-    phys = m.to_physical(starting_values(m, dict(zip(ops, y)), {k: t for k in ops}))
+    phys = m.to_reported(starting_values(m, dict(zip(ops, y)), {k: t for k in ops}))
     # the overall sign of Z is not determined by the data: compare products
     np.testing.assert_allclose(phys[0], 0.4, rtol=1e-8)
     np.testing.assert_allclose(phys[1] * phys[2], 1.2 * -0.8, rtol=1e-8)
@@ -83,16 +83,16 @@ def test_oscillating_start_has_the_right_sign():
     t = np.arange(2, 14)
     m = make_model("exp", 1, ["a"], {"a": t}, T, oscillating=1)
     truth = np.array([0.3, 1.0, 0.6, 0.2])   # E0, A0, Eosc0, Aosc0
-    y = m.predict(m.from_physical(truth))
-    phys = m.to_physical(starting_values(m, y, t))
+    y = m.predict(m.from_reported(truth))
+    phys = m.to_reported(starting_values(m, y, t))
     assert phys[3] > 0 and phys[2] > phys[0]
 
 
 def test_overrides_replace_values_and_are_checked():
     t = np.arange(3, 14)
     m = make_model("exp", 2, ["a"], {"a": t}, T)
-    y = m.predict(m.from_physical([0.4, 1.0, 1.0, 0.5]))
-    phys = m.to_physical(starting_values(m, y, t, overrides={"E1": 1.1, "A1.a": 0.3}))
+    y = m.predict(m.from_reported([0.4, 1.0, 1.0, 0.5]))
+    phys = m.to_reported(starting_values(m, y, t, overrides={"E1": 1.1, "A1.a": 0.3}))
     assert phys[1] == 1.1 and phys[3] == 0.3
     with pytest.raises(FitError) as err:
         starting_values(m, y, t, overrides={"E7": 1.0})

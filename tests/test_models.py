@@ -4,26 +4,26 @@ from __future__ import annotations
 
 import pytest
 
-from plateaufit.fit.models import check_formula, physical_parameter_names
+from plateaufit.fit.models import check_formula, reported_parameter_names
 
 
 def test_names_plain_order():
-    names = physical_parameter_names(["pion", "rho"], 2, oscillating=1, constant=True)
+    names = reported_parameter_names(["pion", "rho"], 2, oscillating=1, constant=True)
     assert names == ["E0", "E1", "A0.pion", "A0.rho", "A1.pion", "A1.rho",
                      "Eosc0", "Aosc0.pion", "Aosc0.rho", "c.pion", "c.rho"]
 
 
 def test_names_factorised_distinct_operators():
     ops = {"ll": ("l", "l"), "ls": ("l", "s"), "ss": ("s", "s")}
-    names = physical_parameter_names(["ll", "ls", "ss"], 2, operators=ops)
+    names = reported_parameter_names(["ll", "ls", "ss"], 2, operators=ops)
     assert names == ["E0", "E1", "Z0.l", "Z0.s", "Z1.l", "Z1.s"]
 
 
 def test_names_bad_input():
     with pytest.raises(ValueError, match="states"):
-        physical_parameter_names(["a"], 0)
+        reported_parameter_names(["a"], 0)
     with pytest.raises(ValueError, match="operators"):
-        physical_parameter_names(["a", "b"], 1, operators={"a": ("x", "x")})
+        reported_parameter_names(["a", "b"], 1, operators={"a": ("x", "x")})
 
 
 def test_formula_accepts_arithmetic():
@@ -90,7 +90,7 @@ def test_predict_matches_written_out_sum(form):
     phys = {"E0": 0.3, "E1": 0.8, "A0.pion": 2.0, "A0.kaon": 1.5, "A1.pion": -0.4,
             "A1.kaon": 0.7, "Eosc0": 0.6, "Aosc0.pion": 0.05, "Aosc0.kaon": -0.02,
             "c.pion": 1e-3, "c.kaon": 2e-3}
-    theta = m.from_physical(np.array([phys[n] for n in m.physical_names]))
+    theta = m.from_reported(np.array([phys[n] for n in m.reported_names]))
 
     def g(e, t):
         if form == "exp":
@@ -110,8 +110,8 @@ def test_predict_matches_written_out_sum(form):
 def test_factorised_amplitudes_are_products():
     ops = {"ll": ("l", "l"), "ls": ("l", "s"), "ss": ("s", "s")}
     tr = {k: np.arange(2, 7) for k in ops}
-    m = make_model("exp", 1, list(ops), tr, T, factorised=ops)
-    assert m.physical_names == ("E0", "Z0.l", "Z0.s")
+    m = make_model("exp", 1, list(ops), tr, T, operators=ops)
+    assert m.reported_names == ("E0", "Z0.l", "Z0.s")
     theta = np.array([0.5, 1.5, -0.5])
     y = m.predict(theta).reshape(3, 5)
     e = np.exp(-0.5 * np.arange(2, 7))
@@ -121,11 +121,11 @@ def test_factorised_amplitudes_are_products():
 def test_internal_energies_are_log_gaps_and_roundtrip():
     m = make_model("cosh", 3, ["a"], {"a": np.arange(2, 10)}, T)
     phys = np.array([0.2, 0.5, 1.4, 1.0, 0.3, 0.1])
-    theta = m.from_physical(phys)
+    theta = m.from_reported(phys)
     np.testing.assert_allclose(theta[:3], [0.2, np.log(0.3), np.log(0.9)], rtol=1e-14)
-    np.testing.assert_allclose(m.to_physical(theta), phys, rtol=1e-14)
+    np.testing.assert_allclose(m.to_reported(theta), phys, rtol=1e-14)
     with pytest.raises(ValueError, match="increasing"):
-        m.from_physical(np.array([0.5, 0.4, 1.4, 1.0, 0.3, 0.1]))
+        m.from_reported(np.array([0.5, 0.4, 1.4, 1.0, 0.3, 0.1]))
 
 
 @pytest.mark.parametrize("form", ["exp", "sinh"])
@@ -133,22 +133,22 @@ def test_batched_evaluation_equals_loop(form):
     rng = np.random.default_rng(7)
     ops = {"a": ("x", "x"), "b": ("x", "y")}
     m = make_model(form, 2, ["a", "b"], {"a": np.arange(1, 6), "b": np.arange(2, 9)}, T,
-                   oscillating=1, constant=True, factorised=ops)
+                   oscillating=1, constant=True, operators=ops)
     theta = rng.normal(scale=0.3, size=(3, 4, m.n_params))
-    pred, jac, phys = m.predict(theta), m.jacobian(theta), m.physical_jacobian(theta)
+    pred, jac, phys = m.predict(theta), m.jacobian(theta), m.reported_jacobian(theta)
     assert pred.shape == (3, 4, m.n_points) and jac.shape == (3, 4, m.n_points, m.n_params)
     for i in range(3):
         for j in range(4):
             np.testing.assert_allclose(pred[i, j], m.predict(theta[i, j]), rtol=1e-14)
             np.testing.assert_allclose(jac[i, j], m.jacobian(theta[i, j]), rtol=1e-14)
-            np.testing.assert_allclose(phys[i, j], m.physical_jacobian(theta[i, j]))
+            np.testing.assert_allclose(phys[i, j], m.reported_jacobian(theta[i, j]))
 
 
 def test_formula_model_evaluates_expression():
     m = make_model("formula", 1, ["a", "b"], {"a": np.arange(2, 6), "b": np.arange(3, 5)}, T,
                    formula={"expression": "amp * (exp(-m * t) + exp(-m * (T - t)))",
                             "params": {"amp": 1.0, "m": 0.5}})
-    assert not m.has_analytic_jacobian and m.physical_names == ("amp", "m")
+    assert not m.has_analytic_jacobian and m.reported_names == ("amp", "m")
     t = np.array([2, 3, 4, 5, 3, 4.0])
     np.testing.assert_allclose(m.predict([2.0, 0.4]),
                                2.0 * (np.exp(-0.4 * t) + np.exp(-0.4 * (T - t))), rtol=1e-14)
@@ -174,7 +174,7 @@ def test_make_model_errors_name_the_key():
     with pytest.raises(FitError, match="empty"):
         make_model("exp", 1, ["a"], {"a": np.arange(0)}, T)
     with pytest.raises(FitError, match="source and sink"):
-        make_model("exp", 1, ["a"], tr, T, factorised={"b": ("x", "y")})
+        make_model("exp", 1, ["a"], tr, T, operators={"b": ("x", "y")})
 
 
 def test_formula_numbers_are_numpy_floats():
@@ -190,7 +190,7 @@ def test_formula_numbers_are_numpy_floats():
 @pytest.mark.parametrize("extras", [
     {},
     {"oscillating": 2, "constant": True},
-    {"oscillating": 1, "factorised": {"a": ("x", "x"), "b": ("x", "y")}},
+    {"oscillating": 1, "operators": {"a": ("x", "x"), "b": ("x", "y")}},
 ])
 def test_predict_and_jacobian_in_one_pass_equal_the_two_calls(form, extras):
     rng = np.random.default_rng(8)

@@ -115,8 +115,8 @@ def test_average_recovers_the_ground_state_and_weights_move_to_two_states(two_st
     fits = two_state_scan
     aic = np.array([f.central.aic for f in fits])
     converged = np.array([f.converged for f in fits])
-    central = np.array([[f.central.physical["E0"]] for f in fits])
-    samples = np.stack([f.samples[:, [f.model.physical_names.index("E0")]] for f in fits])
+    central = np.array([[f.central.reported["E0"]] for f in fits])
+    samples = np.stack([f.samples[:, [f.model.reported_names.index("E0")]] for f in fits])
     avg = model_average(central, samples, aic, converged, ["E0"])
     assert abs(avg.value["E0"] - E0) < 3 * avg.error["E0"]
     assert avg.error["E0"] < 0.02   # the data do pin E0 down

@@ -82,8 +82,8 @@ def _by_hand(data_dir: Path, results: dict[str, Any], **kwargs: Any):
 
 def _assert_same_fit(results: dict[str, Any], fit) -> None:
     chosen = results["fits"]["eta"]["chosen"]["params"]
-    for name in fit.model.physical_names:
-        assert chosen[name]["value"] == pytest.approx(fit.central.physical[name], rel=1e-10)
+    for name in fit.model.reported_names:
+        assert chosen[name]["value"] == pytest.approx(fit.central.reported[name], rel=1e-10)
         assert chosen[name]["error"] == pytest.approx(fit.errors[name], rel=1e-8)
     cov = results["fits"]["eta"]["covariance"]
     assert cov["condition_number"] == pytest.approx(fit.covariance.condition_number, rel=1e-10)
@@ -191,9 +191,9 @@ def test_factorised_reaches_the_fit(data_dir, spy) -> None:
     spec = _fit_spec(factorised=True)
     spec["observables"]["eta"].update(source="g5", sink="g5")
     results = _run(data_dir, spec, "fit-factorised")
-    assert spy[0]["factorised"] == {"eta": ("g5", "g5")}
+    assert spy[0]["operators"] == {"eta": ("g5", "g5")}
     assert set(results["fits"]["eta"]["chosen"]["params"]) == {"E0", "Z0.g5"}
-    fit, _ = _by_hand(data_dir, results, factorised={"eta": ("g5", "g5")})
+    fit, _ = _by_hand(data_dir, results, operators={"eta": ("g5", "g5")})
     _assert_same_fit(results, fit)
 
 
@@ -203,6 +203,6 @@ def test_choose_reaches_the_chosen_result(data_dir, spy) -> None:
     chosen = results["fits"]["eta"]["chosen"]
     assert (chosen["method"], chosen["tmin"], chosen["tmax"]) == ("single", 6, 11)
     fit, _ = _by_hand(data_dir, results, tmin=6)
-    for name in fit.model.physical_names:
-        assert chosen["params"][name]["value"] == pytest.approx(fit.central.physical[name],
+    for name in fit.model.reported_names:
+        assert chosen["params"][name]["value"] == pytest.approx(fit.central.reported[name],
                                                                 rel=1e-10)

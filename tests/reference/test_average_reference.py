@@ -122,8 +122,8 @@ def _fake_fit(e0, aic, samples, flags=(), converged=True):
     from plateaufit.fit.diagnostics import Flag, is_degenerate
 
     flags = tuple(Flag(code, code) for code in flags)
-    return SimpleNamespace(model=SimpleNamespace(physical_names=("E0",)),
-                           central=SimpleNamespace(physical={"E0": e0}, aic=aic),
+    return SimpleNamespace(model=SimpleNamespace(reported_names=("E0",)),
+                           central=SimpleNamespace(reported={"E0": e0}, aic=aic),
                            samples=np.asarray(samples, float)[:, None], converged=converged,
                            flags=flags, degenerate=is_degenerate(flags), undetermined=set())
 

@@ -41,7 +41,7 @@ def _invented(form, truth, observables, t, T, n_cfg, noise, seed, states):
     rng = np.random.default_rng(seed)
     ranges = {o: t for o in observables}
     true_model = make_model(form, states, observables, ranges, T)
-    centre = true_model.predict(true_model.from_physical(np.asarray(truth, float)))
+    centre = true_model.predict(true_model.from_reported(np.asarray(truth, float)))
     n = centre.size
     # AR(1)-correlated noise along the concatenated points: neighbouring
     # timeslices (and the two observables) are correlated, as in real data.
@@ -88,7 +88,7 @@ def _setup(case):
 def _prior_arrays(model, priors):
     if not priors:
         return np.zeros(0, int), np.zeros(0), np.zeros(0)
-    names = list(model.physical_names)
+    names = list(model.reported_names)
     idx, mean, width = [], [], []
     for k, v in priors.items():
         m, w = (v.mean, v.width) if isinstance(v, Prior) else v
@@ -104,13 +104,13 @@ def _residual_functions(model, chol, y, priors):
     def residual(theta):
         r = solve_triangular(chol, model.predict(theta) - y, lower=True)
         if idx.size:
-            r = np.concatenate([r, (model.to_physical(theta)[idx] - mean) / width])
+            r = np.concatenate([r, (model.to_reported(theta)[idx] - mean) / width])
         return r
 
     def jacobian(theta):
         j = solve_triangular(chol, model.jacobian(theta), lower=True)
         if idx.size:
-            j = np.vstack([j, model.physical_jacobian(theta)[idx] / width[:, None]])
+            j = np.vstack([j, model.reported_jacobian(theta)[idx] / width[:, None]])
         return j
 
     return residual, jacobian
@@ -118,7 +118,7 @@ def _residual_functions(model, chol, y, priors):
 
 def _central(model, chol, y, priors, truth):
     residual, jacobian = _residual_functions(model, chol, y, priors)
-    start = model.from_physical(np.asarray(truth, float))
+    start = model.from_reported(np.asarray(truth, float))
     return scipy.optimize.least_squares(residual, start, jac=jacobian, method="lm",
                                         xtol=1e-15, ftol=1e-15, gtol=1e-15).x
 
@@ -148,11 +148,11 @@ def _scipy_refit(model, chol, y, priors, start):
 
 
 def _assert_close(model, batched, reference, what):
-    got = model.to_physical(batched)
-    want = model.to_physical(reference)
+    got = model.to_reported(batched)
+    want = model.to_reported(reference)
     rel = np.abs(got - want) / np.abs(want)
     worst = np.unravel_index(np.argmax(rel), rel.shape)
-    assert rel.max() <= RTOL, (f"{what}: sample {worst[0]}, {model.physical_names[worst[1]]}"
+    assert rel.max() <= RTOL, (f"{what}: sample {worst[0]}, {model.reported_names[worst[1]]}"
                                f" differs by {rel.max():.2e} relative")
 
 

@@ -28,7 +28,7 @@ def _finite_difference_jacobian(model, theta, h=1e-6):
 @pytest.mark.parametrize("extras", [
     {},
     {"oscillating": 2, "constant": True},
-    {"oscillating": 1, "factorised": {"a": ("x", "x"), "b": ("x", "y"), "c": ("y", "y")}},
+    {"oscillating": 1, "operators": {"a": ("x", "x"), "b": ("x", "y"), "c": ("y", "y")}},
 ])
 def test_analytic_jacobian_equals_finite_differences(form, extras):
     # exact: central finite differences, error O(h^2) ~ 1e-12 relative
@@ -44,7 +44,7 @@ def test_analytic_jacobian_equals_finite_differences(form, extras):
 
 @pytest.mark.parametrize("form", ["cosh", "exp"])
 def test_physical_jacobian_equals_finite_differences(form):
-    # exact: central finite differences of to_physical
+    # exact: central finite differences of to_reported
     rng = np.random.default_rng(12)
     model = make_model(form, 3, ["a"], {"a": np.arange(2, 9)}, T, oscillating=2)
     theta = rng.normal(scale=0.5, size=model.n_params)
@@ -52,8 +52,8 @@ def test_physical_jacobian_equals_finite_differences(form):
     for k in range(model.n_params):
         step = np.zeros(model.n_params)
         step[k] = 1e-6
-        num[:, k] = (model.to_physical(theta + step) - model.to_physical(theta - step)) / 2e-6
-    np.testing.assert_allclose(model.physical_jacobian(theta), num, atol=1e-8)
+        num[:, k] = (model.to_reported(theta + step) - model.to_reported(theta - step)) / 2e-6
+    np.testing.assert_allclose(model.reported_jacobian(theta), num, atol=1e-8)
 
 
 def test_formula_numerical_jacobian_equals_analytic_derivative():
@@ -228,7 +228,7 @@ def test_two_state_fit_of_noiseless_data_recovers_the_truth(form):
     t = np.arange(1.0, 16.0)
     model = make_model(form, 2, ["a"], {"a": t}, T)
     truth = np.array([0.3, 0.75, 1.0, 0.6])
-    y = model.predict(model.from_physical(truth))
+    y = model.predict(model.from_reported(truth))
     cov = _correlated_cov(t, 0.01 * y, rho=0.4)
     fit = correlated_fit(y, cov, model, starting_values(model, y, t), tol=1e-12)
     assert fit.converged
@@ -244,7 +244,7 @@ def test_fit_correlator_recovers_invented_truth_within_three_sigma():
     t = np.arange(n_t)
     truth = {"E0": 0.28, "E1": 0.8, "A0.pion": 1.0, "A1.pion": 0.7}
     model = make_model("cosh", 2, ["pion"], {"pion": t}, T)
-    clean = model.predict(model.from_physical([truth[n] for n in model.physical_names]))
+    clean = model.predict(model.from_reported([truth[n] for n in model.reported_names]))
     corr = 0.7 ** np.abs(np.subtract.outer(t, t))
     noise = rng.multivariate_normal(np.zeros(n_t), corr, size=n_bins)
     binned = clean * (1 + 0.04 * noise)

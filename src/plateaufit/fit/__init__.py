@@ -8,11 +8,11 @@ from plateaufit.fit.average import ModelAverage, aic_weights, average_fits, mode
 from plateaufit.fit.derived import DerivedExpression, DerivedInput, DerivedResult, evaluate_derived
 from plateaufit.fit.guesses import starting_values
 from plateaufit.fit.models import (CorrelatorModel, FormulaModel, check_formula, make_model,
-                                   physical_parameter_names)
+                                   reported_parameter_names)
 from plateaufit.fit.scan import ScanPoint, expand_range, scan, scan_points
 
 __all__ = ["CentralFit", "CorrelatorFit", "CorrelatorModel", "FormulaModel", "ModelAverage",
            "Prior", "RefitResult", "ScanPoint", "aic_weights", "average_fits", "DerivedExpression",
            "DerivedInput", "DerivedResult", "evaluate_derived", "check_formula",
            "correlated_fit", "expand_range", "fit_correlator", "jackknife_refits", "make_model",
-           "model_average", "physical_parameter_names", "scan", "scan_points", "starting_values"]
+           "model_average", "reported_parameter_names", "scan", "scan_points", "starting_values"]

@@ -270,7 +270,7 @@ def average_fits(fits: Sequence[Any]) -> ModelAverage:
     """
     names: list[str] = []
     for fit in fits:
-        names.extend(n for n in fit.model.physical_names if n not in names)
+        names.extend(n for n in fit.model.reported_names if n not in names)
     n_samples = {fit.samples.shape[0] for fit in fits}
     if len(n_samples) != 1:
         raise FitError("", "all fits in an average must share the same jackknife samples; "
@@ -280,11 +280,11 @@ def average_fits(fits: Sequence[Any]) -> ModelAverage:
     samples = np.full((len(fits), s_count, len(names)), np.nan)
     for i, fit in enumerate(fits):
         left_out = set(getattr(fit, "undetermined", ()) or ())
-        for j, name in enumerate(fit.model.physical_names):
+        for j, name in enumerate(fit.model.reported_names):
             if name in left_out:
                 continue
             k = names.index(name)
-            central[i, k] = fit.central.physical[name]
+            central[i, k] = fit.central.reported[name]
             samples[i, :, k] = fit.samples[:, j]
     aic = np.array([fit.central.aic for fit in fits], dtype=float)
     return model_average(central, samples, aic, usable_fits(fits), names)
@@ -293,10 +293,10 @@ def average_fits(fits: Sequence[Any]) -> ModelAverage:
 def usable_fits(fits: Sequence[Any]) -> np.ndarray:
     """Per fit: converged, not degenerate by its flags, and no ``E0 <= 0``."""
     return np.array([bool(fit.converged) and not getattr(fit, "degenerate", False)
-                     for fit in fits], dtype=bool) & physical_ground_state(fits)
+                     for fit in fits], dtype=bool) & positive_ground_state(fits)
 
 
-def physical_ground_state(fits: Sequence[Any]) -> np.ndarray:
+def positive_ground_state(fits: Sequence[Any]) -> np.ndarray:
     """Per fit: False where the central fit's ``E0`` exists and is not positive."""
-    return np.array([not (fit.central.physical.get("E0", 1.0) <= 0.0) for fit in fits],
+    return np.array([not (fit.central.reported.get("E0", 1.0) <= 0.0) for fit in fits],
                     dtype=bool)

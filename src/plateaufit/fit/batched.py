@@ -19,7 +19,7 @@ Problem solved for every sample ``s``::
 with ``L_s`` the lower Cholesky factor of the covariance used for that sample
 (one frozen matrix shared by all samples, or one per sample), ``f`` the model,
 and optional Gaussian priors on the *reported* parameters
-``P = model.to_physical(theta)``.
+``P = model.to_reported(theta)``.
 
 Bounds follow the central fit (:mod:`plateaufit.fit.central`), which maps
 bounds on reported parameters to a box on the internal ones
@@ -50,6 +50,10 @@ array operations per iteration (about 130, of 1-3 us each), not by their
 size: a scan's two-state fits whose excited state the data barely constrain
 converge linearly at a rate near 1/2 (large residuals) and take most of the
 iterations. ``benchmarks/run_benchmarks.py`` measures it.
+
+One module of about 650 lines on purpose: the iteration's state (damping,
+rates, rounding floors, the working set) is shared by every step of the loop,
+and splitting it would pass a dozen arrays between modules.
 
 References
 ----------
@@ -127,12 +131,12 @@ class BatchedModel(Protocol):
     """
 
     n_params: int
-    physical_names: tuple[str, ...]
+    reported_names: tuple[str, ...]
 
     def predict(self, theta: np.ndarray) -> np.ndarray: ...
     def jacobian(self, theta: np.ndarray) -> np.ndarray: ...
-    def to_physical(self, theta: np.ndarray) -> np.ndarray: ...
-    def physical_jacobian(self, theta: np.ndarray) -> np.ndarray: ...
+    def to_reported(self, theta: np.ndarray) -> np.ndarray: ...
+    def reported_jacobian(self, theta: np.ndarray) -> np.ndarray: ...
 
 
 class _Stack:
@@ -190,7 +194,7 @@ class _Stack:
         rp = None
         if self.prior is not None:
             index, mean, width = self.prior
-            rp = (self.model.to_physical(theta.T)[:, index].T - mean[:, None]) / width[:, None]
+            rp = (self.model.to_reported(theta.T)[:, index].T - mean[:, None]) / width[:, None]
             chi2 += np.einsum("km,km->m", rp, rp)
         return r, rp, chi2, jac
 
@@ -209,7 +213,7 @@ class _Stack:
         jp = None
         if self.prior is not None:
             index, _, width = self.prior
-            jp = (self.model.physical_jacobian(theta.T)[:, index, :].transpose(1, 2, 0)
+            jp = (self.model.reported_jacobian(theta.T)[:, index, :].transpose(1, 2, 0)
                   / width[:, None, None])
         return jw, jp
 
@@ -332,8 +336,8 @@ def batched_refits(y_samples: np.ndarray, model: BatchedModel, start: np.ndarray
     model : CorrelatorModel
         Anything with batched ``predict(theta (m, p)) -> (m, n)``,
         ``jacobian(theta) -> (m, n, p)`` (derivative of the prediction),
-        ``to_physical`` and ``physical_jacobian`` (used with priors), and
-        ``physical_names``; bounds need a :class:`CorrelatorModel`. A model
+        ``to_reported`` and ``reported_jacobian`` (used with priors), and
+        ``reported_names``; bounds need a :class:`CorrelatorModel`. A model
         that also has ``predict_and_jacobian(theta) -> (f, J)`` (one pass for
         both) is evaluated through it, which saves a model evaluation per
         iteration.
@@ -491,7 +495,7 @@ def _iterate(model, y, winv, theta, converged, rows, prior, box, shared_start,
         rp = None
         if prior is not None:
             index, mean, width = prior
-            rp0 = (model.to_physical(one.T)[:, index].T - mean[:, None]) / width[:, None]
+            rp0 = (model.to_reported(one.T)[:, index].T - mean[:, None]) / width[:, None]
             rp = np.repeat(rp0, m, axis=1)
             chi2 += np.einsum("km,km->m", rp, rp)
             a1 += np.einsum("kam,kbm->abm", jp1, jp1)

@@ -52,7 +52,7 @@ class CentralFit:
     ----------
     theta : ndarray
         Internal parameters at the minimum.
-    physical : dict
+    reported : dict
         Reported name -> value.
     chi2, chi2_data, chi2_prior : float
         Total (augmented) chi2, its data part and its prior part.
@@ -85,7 +85,7 @@ class CentralFit:
     """
 
     theta: np.ndarray
-    physical: dict[str, float]
+    reported: dict[str, float]
     chi2: float
     chi2_data: float
     chi2_prior: float
@@ -114,7 +114,7 @@ class CentralFit:
     @property
     def values(self) -> np.ndarray:
         """Reported parameters as an array, in ``names`` order."""
-        return np.array([self.physical[n] for n in self.names])
+        return np.array([self.reported[n] for n in self.names])
 
     @property
     def errors(self) -> dict[str, float]:
@@ -394,15 +394,15 @@ def finish_central(problem: LeastSquaresProblem, theta: np.ndarray, ok: bool, me
             theta_cov = np.linalg.inv(jw.T @ jw)
         except np.linalg.LinAlgError:
             theta_cov = np.full((p, p), np.nan)
-        pj = model.physical_jacobian(theta)
+        pj = model.reported_jacobian(theta)
         param_cov = pj @ theta_cov @ pj.T
-        physical = model.to_physical(theta)
-    at_bound = tuple(model.physical_names[i] for i in np.flatnonzero(bound_mask))
+        reported = model.to_reported(theta)
+    at_bound = tuple(model.reported_names[i] for i in np.flatnonzero(bound_mask))
     # bounds on E_n (n >= 1) are enforced only through the gaps: report a violation
     if bounds:
         lo_ph, hi_ph = bound_pairs(model, bounds)
-        outside = [model.physical_names[i] for i in range(p)
-                   if not (lo_ph[i] <= physical[i] <= hi_ph[i])]
+        outside = [model.reported_names[i] for i in range(p)
+                   if not (lo_ph[i] <= reported[i] <= hi_ph[i])]
         if outside:
             message = (message + "; " if message else "") + (
                 f"{', '.join(outside)} ended outside the given bounds (bounds on higher "
@@ -411,10 +411,10 @@ def finish_central(problem: LeastSquaresProblem, theta: np.ndarray, ok: bool, me
     n_cut = 0 if n_total_points is None else int(n_total_points) - n
     chi2 = chi2_data + chi2_prior
     return CentralFit(
-        theta=theta, physical=dict(zip(model.physical_names, physical.tolist())),
+        theta=theta, reported=dict(zip(model.reported_names, reported.tolist())),
         chi2=chi2, chi2_data=chi2_data, chi2_prior=chi2_prior, dof=dof, n_points=n,
         n_params=p, n_priors=int(problem.p_idx.size), p_value=p_value,
         p_value_hotelling=hotelling_p_value(chi2_data, dof, n_bins),
         aic=aic(chi2, p, n_cut), converged=bool(ok), message=message,
         param_covariance=param_cov, theta_covariance=theta_cov, n_cut=n_cut, nfev=nfev,
-        names=tuple(model.physical_names), at_bound=at_bound)
+        names=tuple(model.reported_names), at_bound=at_bound)

@@ -66,12 +66,12 @@ def prior_terms(model: CorrelatorModel, priors: Mapping[str, Any] | None
     """
     if not priors:
         return np.zeros(0, dtype=np.intp), np.zeros(0), np.zeros(0)
-    index = {n: i for i, n in enumerate(model.physical_names)}
+    index = {n: i for i, n in enumerate(model.reported_names)}
     idx, mean, width = [], [], []
     for name, prior in priors.items():
         if name not in index:
             raise FitError(f"priors.{name}", f"there is no parameter '{name}' in this fit; "
-                           f"priors may be set on {list(model.physical_names)}")
+                           f"priors may be set on {list(model.reported_names)}")
         try:
             p = prior if isinstance(prior, Prior) else Prior(*(float(v) for v in prior))
         except (TypeError, ValueError) as exc:
@@ -95,11 +95,11 @@ def bound_pairs(model: CorrelatorModel, bounds: Mapping[str, Any] | None
     hi = np.full(model.n_params, np.inf)
     if not bounds:
         return lo, hi
-    index = {n: i for i, n in enumerate(model.physical_names)}
+    index = {n: i for i, n in enumerate(model.reported_names)}
     for name, pair in bounds.items():
         if name not in index:
             raise FitError(f"bounds.{name}", f"there is no parameter '{name}' in this fit; "
-                           f"bounds may be set on {list(model.physical_names)}")
+                           f"bounds may be set on {list(model.reported_names)}")
         try:
             a, b = pair
             a = -np.inf if a is None else float(a)
@@ -146,7 +146,7 @@ def internal_bounds(model: CorrelatorModel, bounds: Mapping[str, Any] | None
     layout: ParameterLayout = model.layout
     if model.form == "formula":
         return lo, hi
-    names = model.physical_names
+    names = model.reported_names
     for family, label in (("energies", "E"), ("oscillating_energies", "Eosc")):
         first_ph = layout.reported[family].start
         first_in = layout.internal[family].start

@@ -109,7 +109,7 @@ class CorrelatorFit:
 
     @property
     def names(self) -> tuple[str, ...]:
-        return tuple(self.model.physical_names)
+        return tuple(self.model.reported_names)
 
     @property
     def degenerate(self) -> bool:
@@ -128,7 +128,7 @@ class CorrelatorFit:
 
     @property
     def values(self) -> dict[str, float]:
-        return dict(self.central.physical)
+        return dict(self.central.reported)
 
     chi2 = property(lambda self: self.central.chi2)
     dof = property(lambda self: self.central.dof)
@@ -160,7 +160,7 @@ def central_of_range(problem: RangeProblem, lower: Mapping[str, float] | None = 
     if lower is None and lower_states and model.form != "formula" and problem.states >= 2:
         below = central_of_range(problem.with_states(problem.states - 1))
         if below.converged:
-            lower = below.physical
+            lower = below.reported
     return central_fits([problem], [lower])[0]
 
 
@@ -177,8 +177,8 @@ def refit_range(problem: RangeProblem, central: CentralFit) -> CorrelatorFit:
     model = problem.model
     x = problem.x
     y_samples = jackknife_samples(x)
-    early = diagnose(names=model.physical_names, states=model.states,
-                     values=central.physical, errors=central.errors,
+    early = diagnose(names=model.reported_names, states=model.states,
+                     values=central.reported, errors=central.errors,
                      curvature_errors=central.errors, converged=central.converged,
                      at_bound=central.at_bound, oscillating=model.oscillating)
     hopeless = is_degenerate(early)
@@ -192,7 +192,7 @@ def refit_range(problem: RangeProblem, central: CentralFit) -> CorrelatorFit:
     else:
         refits = jackknife_refits(y_samples, model, central.theta,
                                   cov=problem.covariance.matrix, **kwargs)
-    samples = refits.physical
+    samples = refits.reported
     good = refits.converged
     if good.sum() >= 2:
         err = np.asarray(jackknife_error(samples[good]), dtype=float)
@@ -201,11 +201,11 @@ def refit_range(problem: RangeProblem, central: CentralFit) -> CorrelatorFit:
         err = np.full(model.n_params, np.nan)
         pcov = np.full((model.n_params, model.n_params), np.nan)
     n_failed = int(np.count_nonzero(~good))
-    names = tuple(model.physical_names)
+    names = tuple(model.reported_names)
     errors = dict(zip(names, err.tolist()))
     signals = state_signals(model, central.theta, refits.theta[good]) if good.sum() >= 2 \
         else None
-    flags = diagnose(names=names, states=model.states, values=central.physical,
+    flags = diagnose(names=names, states=model.states, values=central.reported,
                      errors=errors, curvature_errors=central.errors, samples=samples,
                      converged=central.converged, central_message=central.message,
                      at_bound=central.at_bound, n_refit_failed=n_failed,
@@ -260,7 +260,7 @@ def fit_correlator(binned, *, form: str, states: int, tmin: int, tmax: int,
                    bounds: Mapping[str, Any] | None = None,
                    shrinkage: str | float = "ledoit-wolf", target: str = "diagonal",
                    per_sample: bool = False, oscillating: int = 0, constant: bool = False,
-                   factorised: Mapping[str, tuple[str, str]] | None = None,
+                   operators: Mapping[str, tuple[str, str]] | None = None,
                    formula: Mapping | None = None, start: Mapping[str, float] | None = None,
                    engine: str = "auto", n_total_points: int | None = None,
                    eigenvalue_floor: float | None = None,
@@ -289,7 +289,7 @@ def fit_correlator(binned, *, form: str, states: int, tmin: int, tmax: int,
         Refit every jackknife sample with its own covariance
         (:func:`plateaufit.stats.covariance.per_sample_covariances`) instead of
         the one from all bins.
-    oscillating, constant, factorised, formula
+    oscillating, constant, operators, formula
         See :func:`~plateaufit.fit.models.make_model`.
     start : mapping, optional
         Reported name -> starting value, overriding the automatic one.
@@ -334,7 +334,7 @@ def fit_correlator(binned, *, form: str, states: int, tmin: int, tmax: int,
                                 time_extent=time_extent, priors=priors, bounds=bounds,
                                 shrinkage=shrinkage, target=target, per_sample=per_sample,
                                 oscillating=oscillating, constant=constant,
-                                factorised=factorised, formula=formula, start=start,
+                                operators=operators, formula=formula, start=start,
                                 engine=engine, n_total_points=n_total_points,
                                 eigenvalue_floor=eigenvalue_floor, tol=tol,
                                 central=central)

@@ -306,7 +306,7 @@ def starting_values(model: CorrelatorModel, y_by_obs, t_by_obs,
     Suppl.) 106 (2002) 12.
     """
     if isinstance(model, FormulaModel):
-        phys = np.array([model.start[n] for n in model.physical_names], dtype=float)
+        phys = np.array([model.start[n] for n in model.reported_names], dtype=float)
     else:
         y_map = _as_mapping(model, y_by_obs, "y_by_obs")
         t_map = _as_mapping(model, t_by_obs, "t_by_obs")
@@ -331,18 +331,18 @@ def starting_values(model: CorrelatorModel, y_by_obs, t_by_obs,
             parts.append(np.zeros(len(model.observables)))
         phys = np.concatenate(parts)
     if overrides:
-        index = {n: i for i, n in enumerate(model.physical_names)}
+        index = {n: i for i, n in enumerate(model.reported_names)}
         for name, value in overrides.items():
             if name not in index:
                 raise FitError(f"start.{name}", f"there is no parameter '{name}' in this fit; "
-                               f"parameters are {list(model.physical_names)}")
+                               f"parameters are {list(model.reported_names)}")
             value = float(value)
             if not np.isfinite(value):
                 raise FitError(f"start.{name}", f"the starting value must be a finite "
                                f"number, got {value}")
             phys[index[name]] = value
     try:
-        theta = model.from_physical(phys)
+        theta = model.from_reported(phys)
     except ValueError as exc:
         raise FitError("start", f"{exc}; change the start values") from None
     if not np.all(np.isfinite(theta)):   # pragma: no cover - guarded by construction
@@ -394,8 +394,8 @@ def starting_points(model: CorrelatorModel, y_by_obs, t_by_obs,
     if isinstance(model, FormulaModel) or model.states < 2:
         return first[None, :]
     points = [first]
-    base = model.to_physical(first)
-    names = list(model.physical_names)
+    base = model.to_reported(first)
+    names = list(model.reported_names)
     index = {n: i for i, n in enumerate(names)}
     s = model.states
     top = s - 1
@@ -436,7 +436,7 @@ def starting_points(model: CorrelatorModel, y_by_obs, t_by_obs,
             for name, value in overrides.items():
                 phys[index[name]] = float(value)
         try:
-            theta = model.from_physical(phys)
+            theta = model.from_reported(phys)
         except ValueError:
             continue
         if np.all(np.isfinite(theta)):

@@ -52,7 +52,7 @@ class LeastSquaresProblem:
         with np.errstate(all="ignore"):
             r = self.winv @ (self.model.predict(theta) - self.y)
             if self.p_idx.size:
-                phys = self.model.to_physical(theta)
+                phys = self.model.to_reported(theta)
                 r = np.concatenate([r, (phys[self.p_idx] - self.p_mean) / self.p_width])
         return r
 
@@ -60,7 +60,7 @@ class LeastSquaresProblem:
         with np.errstate(all="ignore"):
             j = self.winv @ self.model.jacobian(theta)
             if self.p_idx.size:
-                pj = self.model.physical_jacobian(theta)[self.p_idx] / self.p_width[:, None]
+                pj = self.model.reported_jacobian(theta)[self.p_idx] / self.p_width[:, None]
                 j = np.concatenate([j, pj], axis=0)
         return j
 

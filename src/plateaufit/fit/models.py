@@ -7,9 +7,15 @@ order). Every method is batched: ``theta`` may carry leading batch axes.
 Parameter names
 ---------------
 The *reported* names (what users write in ``priors:`` and read in results) are
-given by :func:`physical_parameter_names`. Internally the energies of higher
+given by :func:`reported_parameter_names`. Internally the energies of higher
 states are positive log-gaps, ``E_n = E_{n-1} + exp(lgap_n)``, so the order of
 the states is kept during a fit.
+
+One module of about 900 lines on purpose: the built-in model's batched
+evaluation (basis, amplitudes, Jacobian in one pass), its parameter layout and
+the reported/internal maps are one piece that must change together; the user
+formula model shares its point set-up and the checked expression language its
+names.
 
 References
 ----------
@@ -68,7 +74,7 @@ def operator_labels(operators: Mapping[str, tuple[str, str]],
     return labels
 
 
-def physical_parameter_names(observables: Sequence[str], states: int, *,
+def reported_parameter_names(observables: Sequence[str], states: int, *,
                              oscillating: int = 0, constant: bool = False,
                              operators: Mapping[str, tuple[str, str]] | None = None
                              ) -> list[str]:
@@ -247,7 +253,7 @@ class ParameterLayout:
     Internal vector: ``E0, lgap1, ..`` (ordinary energies), ``Eosc0, lgaposc1, ..``
     (oscillating energies), amplitudes, oscillating amplitudes, constants.
     Reported vector: energies, amplitudes, oscillating energies, oscillating
-    amplitudes, constants (see :func:`physical_parameter_names`). Energy
+    amplitudes, constants (see :func:`reported_parameter_names`). Energy
     families are ``E0`` then log-gaps internally and absolute energies when
     reported; every other family is the same numbers in both vectors.
 
@@ -334,8 +340,8 @@ class CorrelatorModel:
     param_names : tuple of str
         Internal parameter names (``E0, lgap1, ..., Eosc0, lgaposc1, ...,``
         amplitudes, constants).
-    physical_names : tuple of str
-        Reported parameter names, see :func:`physical_parameter_names`.
+    reported_names : tuple of str
+        Reported parameter names, see :func:`reported_parameter_names`.
     n_params, n_points : int
     has_analytic_jacobian : bool
         True: :meth:`jacobian` is analytic.
@@ -361,7 +367,7 @@ class CorrelatorModel:
         self.operators = None if operators is None else {
             k: (str(v[0]), str(v[1])) for k, v in operators.items()}
         self._setup_points(observables, t_ranges, time_extent)
-        self.physical_names = tuple(physical_parameter_names(
+        self.reported_names = tuple(reported_parameter_names(
             self.observables, self.states, oscillating=self.oscillating,
             constant=self.constant, operators=self.operators))
         if self.operators is not None:
@@ -674,7 +680,7 @@ class CorrelatorModel:
             return self.predict(theta), self.jacobian(theta)
         return self._evaluate(theta, True)
 
-    def to_physical(self, theta: np.ndarray) -> np.ndarray:
+    def to_reported(self, theta: np.ndarray) -> np.ndarray:
         """Internal parameters -> reported parameters (absolute energies), same shape."""
         theta = np.asarray(theta, dtype=float)
         s, so = self.states, self.oscillating
@@ -685,8 +691,8 @@ class CorrelatorModel:
         parts.append(theta[..., self._sl_c])
         return np.concatenate(parts, axis=-1)
 
-    def from_physical(self, values: np.ndarray) -> np.ndarray:
-        """Reported parameters -> internal parameters (inverse of :meth:`to_physical`).
+    def from_reported(self, values: np.ndarray) -> np.ndarray:
+        """Reported parameters -> internal parameters (inverse of :meth:`to_reported`).
 
         Raises
         ------
@@ -696,7 +702,7 @@ class CorrelatorModel:
         values = np.asarray(values, dtype=float)
         if values.shape[-1] != self.n_params:
             raise ValueError(f"expected {self.n_params} parameters "
-                             f"{list(self.physical_names)}, got {values.shape[-1]}")
+                             f"{list(self.reported_names)}, got {values.shape[-1]}")
         s, so = self.states, self.oscillating
         e = values[..., self._ph_E]
         parts = [e[..., :1], _log_gaps(e, "state")]
@@ -706,7 +712,7 @@ class CorrelatorModel:
         parts += [values[..., self._ph_A], values[..., self._ph_Ao], values[..., self._ph_c]]
         return np.concatenate(parts, axis=-1)
 
-    def physical_jacobian(self, theta: np.ndarray) -> np.ndarray:
+    def reported_jacobian(self, theta: np.ndarray) -> np.ndarray:
         """d (reported parameters) / d (internal parameters), (..., n_params, n_params)."""
         theta = np.asarray(theta, dtype=float)
         s, so = self.states, self.oscillating
@@ -770,7 +776,7 @@ class FormulaModel(CorrelatorModel):
         self._setup_points(observables, t_ranges, time_extent)
         self.amplitude_labels = ()
         self.param_names = tuple(self.start)
-        self.physical_names = self.param_names
+        self.reported_names = self.param_names
         self.n_params = len(self.param_names)
         self._globals = {"__builtins__": {}, "exp": np.exp, "log": np.log,
                          "cosh": np.cosh, "sinh": np.sinh, "tanh": np.tanh,
@@ -814,17 +820,17 @@ class FormulaModel(CorrelatorModel):
         down = self.predict(theta[..., None, :] - step)
         return np.swapaxes((up - down) / (2.0 * h[..., :, None]), -1, -2)
 
-    def to_physical(self, theta: np.ndarray) -> np.ndarray:
+    def to_reported(self, theta: np.ndarray) -> np.ndarray:
         return np.array(theta, dtype=float, copy=True)
 
-    def from_physical(self, values: np.ndarray) -> np.ndarray:
+    def from_reported(self, values: np.ndarray) -> np.ndarray:
         values = np.asarray(values, dtype=float)
         if values.shape[-1] != self.n_params:
             raise ValueError(f"expected {self.n_params} parameters "
-                             f"{list(self.physical_names)}, got {values.shape[-1]}")
+                             f"{list(self.reported_names)}, got {values.shape[-1]}")
         return values.copy()
 
-    def physical_jacobian(self, theta: np.ndarray) -> np.ndarray:
+    def reported_jacobian(self, theta: np.ndarray) -> np.ndarray:
         theta = np.asarray(theta, dtype=float)
         return np.broadcast_to(np.eye(self.n_params),
                                theta.shape[:-1] + (self.n_params, self.n_params)).copy()
@@ -833,7 +839,7 @@ class FormulaModel(CorrelatorModel):
 def make_model(form: str, states: int, observables: Sequence[str],
                t_ranges: Mapping[str, np.ndarray], time_extent: int, *,
                oscillating: int = 0, constant: bool = False,
-               factorised: Mapping[str, tuple[str, str]] | None = None,
+               operators: Mapping[str, tuple[str, str]] | None = None,
                formula: Mapping | None = None) -> CorrelatorModel:
     """Build the correlator model of one fit.
 
@@ -855,7 +861,7 @@ def make_model(form: str, states: int, observables: Sequence[str],
         energies ``Eosc_n`` (staggered fermions).
     constant : bool, optional
         Add a constant ``c.NAME`` per observable (e.g. thermal wrap-around).
-    factorised : mapping, optional
+    operators : mapping, optional
         Observable name -> ``(source, sink)`` operator labels; amplitudes are
         then ``A_n = Z_n.source * Z_n.sink``.
     formula : mapping, optional
@@ -883,7 +889,7 @@ def make_model(form: str, states: int, observables: Sequence[str],
         if not formula or "expression" not in formula:
             raise FitError("formula", "model 'formula' needs formula: {expression: ..., "
                            "params: {NAME: start}}")
-        if oscillating or constant or factorised:
+        if oscillating or constant or operators:
             raise FitError("model", "oscillating, constant and factorised apply to the "
                            "exp/cosh/sinh models only; write them into the formula instead")
         try:
@@ -910,7 +916,7 @@ def make_model(form: str, states: int, observables: Sequence[str],
     try:
         return CorrelatorModel(form, int(states), observables, t_ranges, time_extent,
                                oscillating=int(oscillating), constant=constant,
-                               operators=factorised)
+                               operators=operators)
     except ValueError as exc:
-        raise FitError("observables" if "observ" in str(exc) else "factorised"
+        raise FitError("observables" if "observ" in str(exc) else "operators"
                        if "operator" in str(exc) else "", str(exc)) from None

@@ -147,7 +147,7 @@ def central_fits(problems: Sequence[RangeProblem],
         chi2 = np.einsum("mi,mi->m", resid, resid)
         idx, mean, width = prior_terms(union, first.priors)
         if idx.size:
-            rp = (union.to_physical(theta)[:, idx] - mean) / width
+            rp = (union.to_reported(theta)[:, idx] - mean) / width
             chi2 = chi2 + np.einsum("mk,mk->m", rp, rp)
     lo, hi = internal_bounds(union, first.bounds)
     prior = prior_terms(first.model, first.priors)

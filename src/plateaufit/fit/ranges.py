@@ -74,7 +74,7 @@ class RangeProblem:
         model = make_model(self.form, states, self.observables,
                            {n: t for n in self.observables}, self.model.time_extent,
                            **self.model_options)
-        keep = set(model.physical_names)
+        keep = set(model.reported_names)
 
         def restrict(d):
             if not d:
@@ -109,7 +109,7 @@ def prepare_range(binned, *, form: str, states: int, tmin: int, tmax: int,
                   bounds: Mapping[str, Any] | None = None,
                   shrinkage: str | float = "ledoit-wolf", target: str = "diagonal",
                   per_sample: bool = False, oscillating: int = 0, constant: bool = False,
-                  factorised: Mapping[str, tuple[str, str]] | None = None,
+                  operators: Mapping[str, tuple[str, str]] | None = None,
                   formula: Mapping | None = None, start: Mapping[str, float] | None = None,
                   engine: str = "auto", n_total_points: int | None = None,
                   eigenvalue_floor: float | None = None,
@@ -148,7 +148,7 @@ def prepare_range(binned, *, form: str, states: int, tmin: int, tmax: int,
                            f"(tmin={tmin}, {n_t} timeslices)")
     t = np.arange(tmin, tmax + 1)
     model_options = {"oscillating": oscillating, "constant": constant,
-                     "factorised": factorised, "formula": formula}
+                     "operators": operators, "formula": formula}
     model = make_model(form, states, names, {n: t for n in names}, time_extent,
                        **model_options)
     if model.n_points < model.n_params and not priors:

@@ -59,7 +59,7 @@ class RefitResult:
     ----------
     theta : ndarray, (S, p)
         Internal parameters per sample (NaN rows where not converged).
-    physical : ndarray, (S, p)
+    reported : ndarray, (S, p)
         Reported parameters per sample (NaN rows where not converged).
     converged : ndarray of bool, (S,)
     n_fallback : int
@@ -69,7 +69,7 @@ class RefitResult:
     """
 
     theta: np.ndarray
-    physical: np.ndarray
+    reported: np.ndarray
     converged: np.ndarray
     n_fallback: int
     engine: str
@@ -221,8 +221,8 @@ def jackknife_refits(y_samples: np.ndarray, model: CorrelatorModel, start: np.nd
         used = "batched"
     theta[~conv] = np.nan
     with np.errstate(all="ignore"):
-        physical = model.to_physical(theta)
-    physical[~conv] = np.nan
-    return RefitResult(theta=theta, physical=physical, converged=conv,
+        reported = model.to_reported(theta)
+    reported[~conv] = np.nan
+    return RefitResult(theta=theta, reported=reported, converged=conv,
                        n_fallback=n_fallback, engine=used)
 

@@ -29,7 +29,7 @@ import numpy as np
 from plateaufit.errors import FitError, PlateaufitError
 from plateaufit.fit.central import CentralFit
 from plateaufit.fit.correlator_fit import CorrelatorFit, refit_range, with_warnings
-from plateaufit.fit.models import EFFECTIVE_MASS_KIND, physical_parameter_names
+from plateaufit.fit.models import EFFECTIVE_MASS_KIND, reported_parameter_names
 from plateaufit.fit.numerics import CaughtWarnings, merge_messages
 from plateaufit.fit.range_stack import central_fits
 from plateaufit.fit.ranges import RangeProblem, prepare_range
@@ -138,7 +138,7 @@ def _parameter_counter(n_obs: int | None, n_params_fn: Callable[[int], int] | No
     names = observables if observables is not None else [f"obs{i}" for i in range(n_obs)]
 
     def count(states: int) -> int:
-        return len(physical_parameter_names(names, states, oscillating=oscillating,
+        return len(reported_parameter_names(names, states, oscillating=oscillating,
                                             constant=constant, operators=operators))
     return n_obs, count
 
@@ -161,7 +161,7 @@ def scan_points(tmins: RangeSpec, tmaxs: RangeSpec, states: int | Sequence[int],
         ``tmax - tmin + 1`` points). Not needed when ``observables`` is given.
     n_params_fn : callable, optional
         ``states -> number of fitted parameters``. By default counted with
-        :func:`plateaufit.fit.models.physical_parameter_names` from
+        :func:`plateaufit.fit.models.reported_parameter_names` from
         ``observables`` (or ``n_obs``), ``oscillating``, ``constant`` and
         ``operators``; for a ``formula`` model, the number of its parameters.
     observables : sequence of str, optional
@@ -169,7 +169,7 @@ def scan_points(tmins: RangeSpec, tmaxs: RangeSpec, states: int | Sequence[int],
     oscillating, constant, operators, formula
         Model options deciding the parameter count, as for
         :func:`plateaufit.fit.models.make_model` (``operators`` is its
-        ``factorised``).
+        ``operators``).
 
     Returns
     -------
@@ -294,7 +294,7 @@ def _central_phase(problems: dict[tuple[int, int, int], RangeProblem],
             lowers = []
             for k in keys:
                 below = centrals[(k[0], k[1], states - 1)]
-                lowers.append(below.physical if below.converged else None)
+                lowers.append(below.reported if below.converged else None)
         for k, fit in zip(keys, central_fits([problems[k] for k in keys], lowers)):
             centrals[k] = fit
     return centrals
@@ -306,7 +306,7 @@ def _lower_centrals(problems: list[RangeProblem]) -> list[CentralFit]:
     lowers: list[Any] = [None] * len(problems)
     if states >= 2:
         below = _lower_centrals([p.with_states(states - 1) for p in problems])
-        lowers = [b.physical if b.converged else None for b in below]
+        lowers = [b.reported if b.converged else None for b in below]
     return central_fits(problems, lowers)
 
 
@@ -341,7 +341,7 @@ def scan(binned: np.ndarray | Mapping[str, np.ndarray], *, tmin: RangeSpec, tmax
         Label of the progress bar (the fit's name).
     **fit_kwargs
         Passed to every ``fit_correlator`` call (``form``, ``time_extent``,
-        ``priors``, ``factorised``, ...). ``priors``, ``bounds`` and ``start``
+        ``priors``, ``operators``, ...). ``priors``, ``bounds`` and ``start``
         may name parameters that only the larger models of the scan have
         (``E1`` when scanning 1 and 2 states): each point gets the entries its
         model has.
@@ -366,7 +366,7 @@ def scan(binned: np.ndarray | Mapping[str, np.ndarray], *, tmin: RangeSpec, tmax
     names, n_t = _n_timeslices(binned)
     options = {"oscillating": fit_kwargs.get("oscillating", 0) or 0,
                "constant": bool(fit_kwargs.get("constant", False)),
-               "operators": fit_kwargs.get("factorised")}
+               "operators": fit_kwargs.get("operators")}
     points = scan_points(tmin, tmax, states, n_obs=1 if names is None else len(names),
                          observables=names, formula=fit_kwargs.get("formula"), **options)
     last = max(p.tmax for p in points)
@@ -382,7 +382,7 @@ def scan(binned: np.ndarray | Mapping[str, np.ndarray], *, tmin: RangeSpec, tmax
         observables = names if names is not None else ["corr"]   # fit_correlator's default name
 
         def names_of(n_states: int) -> list[str]:
-            return physical_parameter_names(observables, n_states, **options)
+            return reported_parameter_names(observables, n_states, **options)
     state_list = sorted({p.states for p in points})
     keys = [(p.tmin, p.tmax, p.states) for p in points]
     kwargs_by_states = _per_states_kwargs(dict(fit_kwargs), names_of, state_list)

@@ -43,7 +43,7 @@ def fit_kwargs(spec: Spec, fit: FitSpec) -> dict[str, Any]:
         "per_sample": spec.covariance.per_sample,
         "oscillating": fit.oscillating,
         "constant": fit.constant,
-        "factorised": spec.operators(fit),
+        "operators": spec.operators(fit),
         "formula": formula,
         "start": dict(fit.start) or None,
         "n_total_points": spec.n_timeslices(fit),
@@ -55,7 +55,7 @@ def n_scan_points(spec: Spec, fit: FitSpec) -> int:
     kwargs = fit_kwargs(spec, fit)
     return len(scan_points(fit.tmin, fit.tmax, fit.states_values, observables=fit.observables,
                            oscillating=kwargs["oscillating"], constant=kwargs["constant"],
-                           operators=kwargs["factorised"], formula=kwargs["formula"]))
+                           operators=kwargs["operators"], formula=kwargs["formula"]))
 
 
 def run_fit(spec: Spec, index: int, prepared: Prepared, *, executor: Any = None,

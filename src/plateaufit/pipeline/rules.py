@@ -15,7 +15,7 @@ from typing import Any
 
 from plateaufit.errors import SpecError
 from plateaufit.fit.derived import DerivedExpression
-from plateaufit.fit.models import check_formula, physical_parameter_names
+from plateaufit.fit.models import check_formula, reported_parameter_names
 from plateaufit.specfile import ModelRules, Spec
 from plateaufit.specfile import load_spec as _load_spec
 from plateaufit.specfile import validate_spec as _validate_spec
@@ -28,7 +28,7 @@ def _check_derived(expression: str, known: Mapping[str, list[str]]) -> None:
 
 
 #: the fit core's rules, as the spec's cross-checks call them
-FIT_RULES = ModelRules(reported_names=physical_parameter_names, check_formula=check_formula,
+FIT_RULES = ModelRules(reported_names=reported_parameter_names, check_formula=check_formula,
                        check_derived=_check_derived)
 
 

@@ -43,13 +43,13 @@ def reported_names(fit: Any) -> list[str]:
     """The reported parameter names of a CorrelatorFit (E0, E1, A0.NAME, ...)."""
     model = fit.model
     names = getattr(model, "reported_names", None)
-    return list(names if names is not None else model.physical_names)
+    return list(names if names is not None else model.reported_names)
 
 
 def _reported_values(fit: Any) -> Mapping[str, float]:
     central = fit.central
     values = getattr(central, "reported", None)
-    return values if values is not None else central.physical
+    return values if values is not None else central.reported
 
 
 def scan_point_result(fit: Any, weight: float) -> ScanPointResult:
