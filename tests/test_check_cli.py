@@ -54,7 +54,7 @@ def test_example_tau_matches_the_ar1_truth():
 
     spec = load_spec(EXAMPLE)
     ens = load_ensemble(spec)
-    r = tau_int(ens.correlators["pion"][:, 4], streams=ens.streams)
+    r = tau_int(ens.correlators["pion"][:, 4], streams=ens.stream_labels)
     assert abs(r.tau - 1.5) < 3 * r.error
 
 
@@ -73,7 +73,7 @@ def test_example_data_are_reproducible(tmp_path, monkeypatch):
 def test_load_ensemble_and_checksums_of_the_example():
     spec = load_spec(EXAMPLE)
     ens = load_ensemble(spec)
-    assert ens.n_configs == 400 and ens.stream_counts() == {1: 220, 2: 180}
+    assert ens.n_configs == 400 and ens.stream_sizes() == {1: 220, 2: 180}
     assert ens.correlators["pion"].shape == (400, 9)
     # ids come from the csv (stream 1: 1000, 1010, ...; stream 2: 2000, ...)
     assert ens.config_ids[0] == 1000 and ens.config_ids[220] == 2000

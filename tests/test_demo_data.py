@@ -110,7 +110,7 @@ def test_loaders_read_back_what_was_generated_with_ids_and_streams(generated, si
     np.testing.assert_array_equal(raws["vector"].config_ids, sim["config_ids"])
     assert csv.config_ids[600] == 21000 and np.all(np.diff(csv.config_ids[:600]) == 8)
     ens = align_observables(raws, name="heron", time_extent=TIME_EXTENT,
-                            stream_counts=[n for _, n in STREAMS],
+                            stream_sizes=[n for _, n in STREAMS],
                             boundaries={"nucleon": "antiperiodic"}, fold={"nucleon": False})
     assert ens.n_configs == 1000 and ens.n_streams == 2
     assert ens.correlators["pion_ss"].shape == (1000, TIME_EXTENT // 2 + 1)

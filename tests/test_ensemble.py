@@ -77,12 +77,12 @@ def test_wrong_column_count_names_file_and_both_numbers():
 
 def test_stream_counts_label_configurations_and_must_add_up():
     a = np.zeros((10, 4))
-    ens = align({"a": raw(a)}, 4, stream_counts=[6, 4])
-    np.testing.assert_array_equal(ens.streams, [0] * 6 + [1] * 4)
-    assert ens.stream_counts() == {0: 6, 1: 4}
+    ens = align({"a": raw(a)}, 4, stream_sizes=[6, 4])
+    np.testing.assert_array_equal(ens.stream_labels, [0] * 6 + [1] * 4)
+    assert ens.stream_sizes() == {0: 6, 1: 4}
     with pytest.raises(DataError) as err:
-        align({"a": raw(a)}, 4, stream_counts=[6, 3])
-    assert err.value.where == "stream_counts"
+        align({"a": raw(a)}, 4, stream_sizes=[6, 3])
+    assert err.value.where == "stream_sizes"
     assert "add up to 9" in err.value.message and "have 10" in err.value.message
 
 
@@ -95,7 +95,7 @@ def test_streams_from_file_are_made_contiguous():
     b = np.asarray([a[ids.index(i)] for i in ids_b]) + 50
     ens = align({"a": raw(a, ids), "b": raw(b, ids_b, streams_b)}, 2,
                 fold={"a": False, "b": False})
-    np.testing.assert_array_equal(ens.streams, [0, 0, 0, 1, 1, 1])
+    np.testing.assert_array_equal(ens.stream_labels, [0, 0, 0, 1, 1, 1])
     np.testing.assert_array_equal(ens.config_ids, [1, 2, 3, 101, 102, 103])
     np.testing.assert_array_equal(ens.correlators["a"][:, 0], [0, 2, 4, 1, 3, 5])
     np.testing.assert_array_equal(ens.correlators["b"], ens.correlators["a"] + 50)
@@ -113,9 +113,9 @@ def test_same_ids_in_two_streams_align_on_stream_and_id():
 def test_file_streams_and_counts_must_agree():
     a = np.zeros((4, 2))
     r = raw(a, [1, 2, 3, 4], [0, 0, 1, 1])
-    assert align({"a": r}, 2, stream_counts=[2, 2]).n_streams == 2
+    assert align({"a": r}, 2, stream_sizes=[2, 2]).n_streams == 2
     with pytest.raises(DataError, match=r"counts \[3, 1\] disagree.*\[2, 2\]"):
-        align({"a": r}, 2, stream_counts=[3, 1])
+        align({"a": r}, 2, stream_sizes=[3, 1])
 
 
 def test_a_single_configuration_is_an_error():
@@ -130,7 +130,7 @@ def _assert_same_ensemble(e1, e2):
     assert set(e1.correlators) == set(e2.correlators)
     for n in e1.correlators:
         np.testing.assert_array_equal(e1.correlators[n], e2.correlators[n])
-    np.testing.assert_array_equal(e1.streams, e2.streams)
+    np.testing.assert_array_equal(e1.stream_labels, e2.stream_labels)
     if e1.config_ids is None:
         assert e2.config_ids is None
     else:
@@ -167,17 +167,17 @@ def test_permuting_the_observables_gives_identical_arrays():
     c = raw(3 * base[c_rows], ids[c_rows], streams[c_rows], name="c.csv")
     ens = _every_order({"a": a, "b": b, "c": c}, T, fold={"a": False, "b": False, "c": False})
     assert ens.aligned_by == "ids"
-    np.testing.assert_array_equal(ens.streams, streams)   # stream 5, then stream 2
+    np.testing.assert_array_equal(ens.stream_labels, streams)   # stream 5, then stream 2
     np.testing.assert_array_equal(ens.config_ids, ids)
     np.testing.assert_array_equal(ens.correlators["b"], 2 * base)
     np.testing.assert_array_equal(ens.correlators["c"], 3 * base)
     # row by row (one file without ids), with stream counts
     d = raw(4 * base, name="d.txt")
-    ens = _every_order({"b": b, "d": d}, T, stream_counts=[7, 5],
+    ens = _every_order({"b": b, "d": d}, T, stream_sizes=[7, 5],
                        fold={"b": False, "d": False})
     assert ens.aligned_by == "rows"
     np.testing.assert_array_equal(ens.correlators["d"], 2 * ens.correlators["b"])
-    assert ens.stream_counts() == {0: 7, 1: 5}
+    assert ens.stream_sizes() == {0: 7, 1: 5}
 
 
 def test_streams_follow_first_appearance_and_ids_within_a_stream(tmp_path):
@@ -194,13 +194,13 @@ def test_streams_follow_first_appearance_and_ids_within_a_stream(tmp_path):
         lines += [f"{ids[i]},{t},{float(values[i, t])!r},{labels[i]}" for t in range(3)]
     (tmp_path / "c.csv").write_text("\n".join(lines) + "\n")
     r = load_correlator(tmp_path / "c.csv")
-    ens = align({"x": r}, 3, stream_counts=[5, 7], fold={"x": False})
-    assert ens.stream_counts() == {0: 5, 1: 7}
+    ens = align({"x": r}, 3, stream_sizes=[5, 7], fold={"x": False})
+    assert ens.stream_sizes() == {0: 5, 1: 7}
     assert ens.stream_names == {0: "b", 1: "a"}
     np.testing.assert_array_equal(ens.correlators["x"], values)
     with pytest.raises(DataError) as err:
-        align({"x": r}, 3, stream_counts=[7, 5])
-    assert err.value.where == "stream_counts"
+        align({"x": r}, 3, stream_sizes=[7, 5])
+    assert err.value.where == "stream_sizes"
     assert "[7, 5] disagree" in err.value.message and "b: 5, a: 7" in err.value.message
 
 
@@ -210,11 +210,11 @@ def test_files_listing_streams_in_different_orders():
     second = raw(a[::-1] * 2, [2, 1, 2, 1], [1, 1, 0, 0], name="k.csv")
     # without counts the order only sorts the blocks: labels in sorted order
     ens = _every_order({"p": first, "k": second}, 2, fold={"p": False, "k": False})
-    np.testing.assert_array_equal(ens.streams, [0, 0, 1, 1])
+    np.testing.assert_array_equal(ens.stream_labels, [0, 0, 1, 1])
     # with counts it is ambiguous which count is whose
     with pytest.raises(DataError) as err:
-        align({"p": first, "k": second}, 2, stream_counts=[2, 2])
-    assert err.value.where == "stream_counts" and "different orders" in err.value.message
+        align({"p": first, "k": second}, 2, stream_sizes=[2, 2])
+    assert err.value.where == "stream_sizes" and "different orders" in err.value.message
     assert "p (p.csv): 0, 1" in err.value.message and "k (k.csv): 1, 0" in err.value.message
 
 
@@ -228,16 +228,16 @@ def test_stream_counts_follow_each_files_own_order_of_configurations():
     file_rows = np.argsort(file_ids, kind="stable")
     sorted_raw = RawCorrelator(values=values[file_rows], config_ids=file_ids[file_rows],
                                streams=None, source=Path("/data/c.h5"), file_rows=file_rows)
-    ens = align({"c": sorted_raw}, 2, stream_counts=[6, 3], fold={"c": False})
-    assert ens.stream_counts() == {0: 6, 1: 3}
+    ens = align({"c": sorted_raw}, 2, stream_sizes=[6, 3], fold={"c": False})
+    assert ens.stream_sizes() == {0: 6, 1: 3}
     np.testing.assert_array_equal(ens.config_ids, file_ids)   # A, then B, by id within
     np.testing.assert_array_equal(ens.correlators["c"], values)
     assert ens.reordered == ("c",) and ens.stream_names is None
     # a text file (file order = Monte Carlo order) matched row by row cannot follow
     text = raw(values, name="t.txt")
     with pytest.raises(DataError) as err:
-        align({"c": sorted_raw, "t": text}, 2, stream_counts=[6, 3])
-    assert err.value.where == "stream_counts"
+        align({"c": sorted_raw, "t": text}, 2, stream_sizes=[6, 3])
+    assert err.value.where == "stream_sizes"
     assert "split the observables' configurations differently" in err.value.message
     assert "c (c.h5) stored its configurations out of id order" in err.value.message
 
@@ -276,6 +276,6 @@ def test_permuting_observables_read_from_files_gives_identical_arrays(tmp_path):
     assert set(ens.reordered) == {"k", "p"}
     # the stream the shuffled CSV shows first comes first; ids ascend within each
     shown_first = rows[order[0]].split(",")[0]
-    assert ens.stream_names[int(ens.streams[0])] == shown_first
-    for s in np.unique(ens.streams):
-        assert np.all(np.diff(ens.config_ids[ens.streams == s]) > 0)
+    assert ens.stream_names[int(ens.stream_labels[0])] == shown_first
+    for s in np.unique(ens.stream_labels):
+        assert np.all(np.diff(ens.config_ids[ens.stream_labels == s]) > 0)

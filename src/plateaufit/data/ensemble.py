@@ -15,14 +15,14 @@ keys of the result.
   its loader returns: text and npy in file order), all must have the same
   number of configurations, and the ids the others know must agree row by row.
 * **Streams** (independent Monte Carlo chains) come from the files (a CSV
-  ``stream`` column), else from ``stream_counts`` (numbers of configurations
+  ``stream`` column), else from ``stream_sizes`` (numbers of configurations
   per stream, counted in each file's own order of the configurations,
   :attr:`~plateaufit.data.loaders.RawCorrelator.file_rows`), else there is one
   stream. Stream labels are matched by the label as written in the file. The
   order of the streams is their order of first appearance in the files; when
   files list the same streams in different orders, it is the sorted order of
-  the labels (integers numerically), unless ``stream_counts`` are given, which
-  is then an error. When both the files and ``stream_counts`` give streams, the
+  the labels (integers numerically), unless ``stream_sizes`` are given, which
+  is then an error. When both the files and ``stream_sizes`` give streams, the
   counts must equal the files' stream sizes in that order. Streams are
   contiguous blocks of configurations in the result.
 * **Folding** is applied per observable after alignment
@@ -57,7 +57,7 @@ class Ensemble:
     correlators : dict[str, numpy.ndarray]
         NAME -> ``(n_cfg, n_t)`` after folding; the rows of all observables
         are the same configurations in the same (Monte Carlo) order.
-    streams : numpy.ndarray
+    stream_labels : numpy.ndarray
         ``(n_cfg,)`` int stream label of each configuration; each stream is
         one contiguous block, streams in order of first appearance.
     config_ids : numpy.ndarray or None
@@ -69,7 +69,7 @@ class Ensemble:
     stream_names : dict[int, str] or None
         Stream label -> the label as written in the files (a CSV ``stream``
         column), in stream order; None when the streams come from
-        ``stream_counts`` or there is one stream without a label.
+        ``stream_sizes`` or there is one stream without a label.
     reordered : tuple of str
         The observables whose loader put the file's rows in another order
         (HDF5 rows stored out of id order, CSV configurations out of order);
@@ -81,7 +81,7 @@ class Ensemble:
     name: str
     time_extent: int
     correlators: dict[str, np.ndarray]
-    streams: np.ndarray
+    stream_labels: np.ndarray
     config_ids: np.ndarray | None
     boundaries: dict[str, str]
     folded: dict[str, bool]
@@ -92,22 +92,23 @@ class Ensemble:
     @property
     def n_configs(self) -> int:
         """Number of configurations (rows of every correlator)."""
-        return int(self.streams.shape[0])
+        return int(self.stream_labels.shape[0])
 
     @property
     def n_streams(self) -> int:
         """Number of distinct Monte Carlo streams."""
-        return int(np.unique(self.streams).size)
+        return int(np.unique(self.stream_labels).size)
 
     @property
-    def stream_labels(self) -> np.ndarray:
-        """The stream labels, in the order the streams appear."""
-        labels, first = np.unique(self.streams, return_index=True)
+    def stream_order(self) -> np.ndarray:
+        """The distinct stream labels, in the order the streams appear."""
+        labels, first = np.unique(self.stream_labels, return_index=True)
         return labels[np.argsort(first)]
 
-    def stream_counts(self) -> dict[int, int]:
+    def stream_sizes(self) -> dict[int, int]:
         """Stream label -> number of configurations, in order of appearance."""
-        return {int(s): int(np.count_nonzero(self.streams == s)) for s in self.stream_labels}
+        return {int(s): int(np.count_nonzero(self.stream_labels == s))
+                for s in self.stream_order}
 
 
 def align_observables(
@@ -115,7 +116,7 @@ def align_observables(
     *,
     name: str,
     time_extent: int,
-    stream_counts: Sequence[int] | None = None,
+    stream_sizes: Sequence[int] | None = None,
     boundaries: Mapping[str, str],
     fold: Mapping[str, bool],
 ) -> Ensemble:
@@ -129,7 +130,7 @@ def align_observables(
         Name of the ensemble.
     time_extent : int
         ``T``; every correlator must have this many timeslices.
-    stream_counts : sequence of int, optional
+    stream_sizes : sequence of int, optional
         Configurations per stream, in the order the files store the
         configurations (the spec's ``ensemble.streams``); their sum must equal
         the number of configurations.
@@ -150,7 +151,7 @@ def align_observables(
         both numbers); configuration ids differ between observables (listing
         missing ids per observable); counts differ where ids are unknown
         (naming each observable's count); streams are inconsistent between
-        files, listed in different orders, or disagree with ``stream_counts``.
+        files, listed in different orders, or disagree with ``stream_sizes``.
     """
     if not raws:
         raise DataError("observables", "no observables to align; define at least one")
@@ -168,7 +169,7 @@ def align_observables(
 
     names = list(raws)
     raws = dict(raws)
-    counts = None if stream_counts is None else _valid_counts(stream_counts)
+    counts = None if stream_sizes is None else _valid_counts(stream_sizes)
     from_counts = counts is not None and all(raws[n].streams is None for n in names)
     if from_counts and len({raws[n].n_configs for n in names}) > 1:
         # the observables disagree already: the alignment names each one's configurations
@@ -217,7 +218,7 @@ def align_observables(
         bnd[n] = b
         folded[n] = f
         correlators[n] = fold_correlator(values[n], b) if f else np.ascontiguousarray(values[n])
-    return Ensemble(name=name, time_extent=T, correlators=correlators, streams=codes,
+    return Ensemble(name=name, time_extent=T, correlators=correlators, stream_labels=codes,
                     config_ids=ids, boundaries=bnd, folded=folded,
                     stream_names=None if from_counts else stream_names,
                     reordered=tuple(n for n in names if raws[n].reordered),
@@ -242,14 +243,14 @@ def _appearance(labels: np.ndarray) -> list[str]:
     return [str(labels[i]) for i in np.sort(first)]
 
 
-def _valid_counts(stream_counts: Sequence[int]) -> list[int]:
+def _valid_counts(stream_sizes: Sequence[int]) -> list[int]:
     try:
-        counts = [int(c) for c in stream_counts]
+        counts = [int(c) for c in stream_sizes]
     except (TypeError, ValueError):
-        raise DataError("stream_counts", f"stream counts must be whole numbers >= 1, got "
-                        f"{list(stream_counts)!r}") from None
+        raise DataError("stream_sizes", f"stream counts must be whole numbers >= 1, got "
+                        f"{list(stream_sizes)!r}") from None
     if not counts or any(c < 1 for c in counts):
-        raise DataError("stream_counts", f"stream counts must be whole numbers >= 1, "
+        raise DataError("stream_sizes", f"stream counts must be whole numbers >= 1, "
                         f"got {counts}")
     return counts
 
@@ -259,7 +260,7 @@ def _label_by_counts(name: str, raw: RawCorrelator, counts: list[int]) -> RawCor
     n = raw.n_configs
     if sum(counts) != n:
         raise DataError(
-            "stream_counts",
+            "stream_sizes",
             f"the stream counts {counts} add up to {sum(counts)} configurations but the "
             f"data have {n} ({name}: {raw.source}); they must be equal",
         )
@@ -279,7 +280,7 @@ def _label_key(label: str):
 def _stream_order(raws: dict[str, RawCorrelator], from_counts: bool,
                   counts: list[int] | None) -> list[str] | None:
     """The labels in stream order: of first appearance, which must agree between files
-    when ``stream_counts`` are given; sorted labels when files disagree without counts."""
+    when ``stream_sizes`` are given; sorted labels when files disagree without counts."""
     if from_counts:
         return [str(i) for i in range(len(counts))]
     orders = {n: _appearance(_labels(r)) for n, r in raws.items() if r.streams is not None}
@@ -292,7 +293,7 @@ def _stream_order(raws: dict[str, RawCorrelator], from_counts: bool,
         listed = "; ".join(f"{n} ({raws[n].source.name}): {', '.join(o)}"
                            for n, o in sorted(orders.items()))
         raise DataError(
-            "stream_counts",
+            "stream_sizes",
             f"the files list the same streams in different orders ({listed}), so it is not "
             "clear which count belongs to which stream (counts follow the order of first "
             "appearance); list the streams in the same order in every file",
@@ -337,7 +338,7 @@ def _check_counts(codes: np.ndarray, ordered: list[int], stream_names: dict[int,
     if file_counts != counts:
         shown = ", ".join(f"{stream_names[c]}: {k}" for c, k in zip(ordered, file_counts))
         raise DataError(
-            "stream_counts",
+            "stream_sizes",
             f"the counts {counts} disagree with the files' stream column (counts "
             f"{file_counts}: {shown}, streams in order of first appearance); remove "
             "ensemble.streams or make them agree",
@@ -379,7 +380,7 @@ def _split_differently(raws: dict[str, RawCorrelator], names: list[str]) -> Data
     why = (f" ({', '.join(f'{n} ({raws[n].source.name})' for n in moved)} stored its "
            "configurations out of id order)") if moved else ""
     return DataError(
-        "stream_counts",
+        "stream_sizes",
         "the stream counts split the observables' configurations differently, because the "
         f"files store them in different orders{why}; give the files stream labels (a CSV "
         "stream column) or store every file's configurations in Monte Carlo order",

@@ -77,7 +77,7 @@ def _observable_lines(spec: Spec, prepared: Prepared, name: str, own_size: int,
     obs = spec.observables[name]
     n_t = ens.correlators[name].shape[1]
     lines = [f"observable {name}: {obs.file} ({obs.resolved_format})"]
-    lines.append(f"  configurations: {ens.n_configs} in {_stream_text(ens.stream_counts())}")
+    lines.append(f"  configurations: {ens.n_configs} in {_stream_text(ens.stream_sizes())}")
     if ens.folded[name]:
         extent = f"folded to t = 0..{n_t - 1} ({n_t} timeslices)"
     else:
@@ -180,7 +180,7 @@ def summarise(spec: Spec, prepared: Prepared) -> str:
     lines = [f"spec {where}: valid ({len(spec.observables)} observable(s), "
              f"{len(spec.fits)} fit(s))"]
     lines.append(f"ensemble {ensemble.name}: T = {ensemble.time_extent}, {ensemble.n_configs} "
-                 f"configurations in {_stream_text(ensemble.stream_counts())}")
+                 f"configurations in {_stream_text(ensemble.stream_sizes())}")
     lines.append(f"binning: bin size {prepared.bin_size} ({how}) -> {prepared.n_bins} bins, "
                  f"{prepared.n_dropped} configuration(s) dropped at stream ends")
     if prepared.bin_size < prepared.auto_bin_size:

@@ -81,7 +81,7 @@ def load_ensemble(spec: Spec) -> Ensemble:
                 raws,
                 name=spec.ensemble.name,
                 time_extent=T,
-                stream_counts=spec.ensemble.stream_sizes,
+                stream_sizes=spec.ensemble.stream_sizes,
                 boundaries={n: o.boundary for n, o in spec.observables.items()},
                 fold={n: o.folds for n, o in spec.observables.items()},
             )

@@ -80,7 +80,7 @@ class Prepared:
     @property
     def stream_sizes(self) -> list[int]:
         """Configurations per stream, in stream order."""
-        return [int(n) for n in self.ensemble.stream_counts().values()]
+        return [int(n) for n in self.ensemble.stream_sizes().values()]
 
     def largest_tau(self, name: str) -> tuple[int, TauIntResult]:
         """The timeslice of observable ``name`` with the largest tau_int, and its result."""
@@ -150,8 +150,8 @@ def prepare(spec: Spec, ensemble: Ensemble) -> Prepared:
     SpecError, DataError
         At ``binning.size`` when the data cannot be binned as asked.
     """
-    labels = ensemble.streams
-    sizes = [int(n) for n in ensemble.stream_counts().values()]
+    labels = ensemble.stream_labels
+    sizes = [int(n) for n in ensemble.stream_sizes().values()]
     taus = {name: tau_int_per_timeslice(series, labels)
             for name, series in ensemble.correlators.items()}
     every_tau = np.concatenate([[r.tau for r in res] for res in taus.values()])
@@ -193,7 +193,7 @@ def ensemble_result(prepared: Prepared) -> EnsembleResult:
         autocorr[name] = AutocorrelationSummary(t=t, rho=np.asarray(r.rho),
                                                 tau_by_window=np.asarray(r.tau_by_window),
                                                 window=int(r.window))
-        study = binning_study(series[:, t], streams=ens.streams)
+        study = binning_study(series[:, t], streams=ens.stream_labels)
         studies[name] = BinningStudySummary(t=t, sizes=np.asarray(study.sizes),
                                             errors=np.asarray(study.errors),
                                             naive_error=np.asarray(study.naive_error))
