@@ -156,6 +156,7 @@ def _assert_close(model, batched, reference, what):
                                f" differs by {rel.max():.2e} relative")
 
 
+@pytest.mark.slow       # loops of lmfit and scipy fits: seconds each
 @pytest.mark.parametrize("case", sorted(CASES))
 def test_frozen_covariance_matches_lmfit_and_scipy(case):
     model, x, y_samples, cov, priors, truth = _setup(case)
@@ -169,6 +170,7 @@ def test_frozen_covariance_matches_lmfit_and_scipy(case):
     _assert_close(model, theta, ref_scipy, "scipy least_squares")     # outside: scipy
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("case", ["cosh-2", "exp-2-simultaneous", "cosh-2-priors"])
 def test_per_sample_covariance_matches_lmfit_and_scipy(case):
     model, x, y_samples, cov, priors, truth = _setup(case)
