@@ -298,3 +298,23 @@ def test_without_shrinkage_auto_binning_keeps_more_bins_than_fit_points(tmp_path
     assert minimum_bins(validate_spec(data, base_dir=tmp_path)) == 2 * 19 + 1
     data["covariance"] = {"shrinkage": "ledoit-wolf"}
     assert minimum_bins(validate_spec(data, base_dir=tmp_path)) == 20
+
+
+def test_check_fails_exactly_where_fit_would(capsys, project, tmp_path):
+    # 10 bins of 6; without shrinkage the covariance of 2 x 7 points of the first scan
+    # point is singular: fit stops there, and check (which sets every point up as fit
+    # does, before anything else) stops with the same message
+    directory, data = project
+    data["binning"] = {"size": 6}
+    data["covariance"] = {"shrinkage": "none"}
+    data["fits"][0].update(tmin=[0, 2], tmax=[4, 6])
+    path = directory / "spec.yaml"
+    path.write_text(yaml.safe_dump(data, sort_keys=False))
+    code, out, err = run(capsys, directory, data)
+    fit_code = main(["fit", str(path), "--out", str(tmp_path / "out"), "--no-plots",
+                     "--jobs", "1", "--quiet"])
+    fit_err = capsys.readouterr().err.strip().splitlines()[-1]
+    assert code == fit_code == 2
+    assert_user_error(code, out, err, "fits[0]", "tmin=0, tmax=4", "singular")
+    assert err.strip() == fit_err
+    assert not (tmp_path / "out" / "results.json").exists()

@@ -318,6 +318,63 @@ def _n_timeslices(binned: np.ndarray | Mapping[str, np.ndarray]) -> tuple[list[s
     return None, np.shape(binned)[-1]
 
 
+def _prepare(binned: np.ndarray | Mapping[str, np.ndarray], tmin: RangeSpec, tmax: RangeSpec,
+             states: int | Sequence[int], fit_kwargs: dict[str, Any]):
+    """The points of a scan and their set-up: (keys, problems, shared task data)."""
+    names, n_t = _n_timeslices(binned)
+    options = {"oscillating": fit_kwargs.get("oscillating", 0) or 0,
+               "constant": bool(fit_kwargs.get("constant", False)),
+               "operators": fit_kwargs.get("operators")}
+    points = scan_points(tmin, tmax, states, n_obs=1 if names is None else len(names),
+                         observables=names, formula=fit_kwargs.get("formula"), **options)
+    last = max(p.tmax for p in points)
+    if last > n_t - 1:
+        raise FitError("tmax", f"tmax = {last} is beyond the data, whose last timeslice is "
+                                f"{n_t - 1} (after folding); lower tmax")
+    if isinstance(binned, Mapping):
+        data: Any = {name: np.asarray(v, dtype=np.float64) for name, v in binned.items()}
+    else:
+        data = np.asarray(binned, dtype=np.float64)
+    names_of = None
+    if fit_kwargs.get("form") != "formula" and fit_kwargs.get("formula") is None:
+        observables = names if names is not None else ["corr"]   # fit_correlator's default name
+
+        def names_of(n_states: int) -> list[str]:
+            return reported_parameter_names(observables, n_states, **options)
+    state_list = sorted({p.states for p in points})
+    keys = [(p.tmin, p.tmax, p.states) for p in points]
+    kwargs_by_states = _per_states_kwargs(dict(fit_kwargs), names_of, state_list)
+    effective = _effective_masses(data, fit_kwargs)
+    with CaughtWarnings():
+        problems = {k: _prepare_point(data, kwargs_by_states, effective, k) for k in keys}
+    return keys, problems, (data, kwargs_by_states, effective)
+
+
+def prepare_scan(binned: np.ndarray | Mapping[str, np.ndarray], *, tmin: RangeSpec,
+                 tmax: RangeSpec, states: int | Sequence[int], **fit_kwargs: Any
+                 ) -> dict[tuple[int, int, int], RangeProblem]:
+    """Set up every point of a scan without fitting: the check of a scan.
+
+    Builds each point's model, data vector and covariance of the mean
+    exactly as :func:`scan` does, so a point whose covariance cannot be used
+    (singular, not positive definite) or whose model cannot be set up raises
+    here, naming the point, before any fit runs.
+
+    Returns
+    -------
+    dict
+        ``(tmin, tmax, states)`` -> :class:`~plateaufit.fit.ranges.RangeProblem`,
+        in the scan's order.
+
+    Raises
+    ------
+    FitError
+        As :func:`scan` would, for the first point that cannot be set up.
+    """
+    keys, problems, _ = _prepare(binned, tmin, tmax, states, fit_kwargs)
+    return {k: problems[k] for k in keys}
+
+
 def scan(binned: np.ndarray | Mapping[str, np.ndarray], *, tmin: RangeSpec, tmax: RangeSpec,
          states: int | Sequence[int], executor: Any = None, progress: bool = False,
          label: str | None = None, **fit_kwargs: Any) -> list[CorrelatorFit]:
@@ -363,41 +420,17 @@ def scan(binned: np.ndarray | Mapping[str, np.ndarray], *, tmin: RangeSpec, tmax
     ----------
     W. I. Jay, E. T. Neil, Phys. Rev. D 103 (2021) 114502.
     """
-    names, n_t = _n_timeslices(binned)
-    options = {"oscillating": fit_kwargs.get("oscillating", 0) or 0,
-               "constant": bool(fit_kwargs.get("constant", False)),
-               "operators": fit_kwargs.get("operators")}
-    points = scan_points(tmin, tmax, states, n_obs=1 if names is None else len(names),
-                         observables=names, formula=fit_kwargs.get("formula"), **options)
-    last = max(p.tmax for p in points)
-    if last > n_t - 1:
-        raise FitError("tmax", f"tmax = {last} is beyond the data, whose last timeslice is "
-                                f"{n_t - 1} (after folding); lower tmax")
-    if isinstance(binned, Mapping):
-        data: Any = {name: np.asarray(v, dtype=np.float64) for name, v in binned.items()}
-    else:
-        data = np.asarray(binned, dtype=np.float64)
-    names_of = None
-    if fit_kwargs.get("form") != "formula" and fit_kwargs.get("formula") is None:
-        observables = names if names is not None else ["corr"]   # fit_correlator's default name
-
-        def names_of(n_states: int) -> list[str]:
-            return reported_parameter_names(observables, n_states, **options)
-    state_list = sorted({p.states for p in points})
-    keys = [(p.tmin, p.tmax, p.states) for p in points]
-    kwargs_by_states = _per_states_kwargs(dict(fit_kwargs), names_of, state_list)
-    effective = _effective_masses(data, fit_kwargs)
-    # 1. every range set up, and its central fit, here (one stacked engine call
-    #    per number of states: deterministic, whatever the executor)
+    keys, problems, shared = _prepare(binned, tmin, tmax, states, fit_kwargs)
+    state_list = sorted({k[2] for k in keys})
+    # 1. every range's central fit, here (one stacked engine call per number
+    #    of states: deterministic, whatever the executor)
     with CaughtWarnings() as caught:
-        problems = {k: _prepare_point(data, kwargs_by_states, effective, k) for k in keys}
         centrals = _central_phase(problems, state_list)
     if caught.count:      # set-up warnings (rare): counted with the first point
         first = centrals[keys[0]]
         first.n_numerical_warnings += caught.count
         first.numerical_warnings = merge_messages(first.numerical_warnings, caught.messages)
     # 2. the jackknife refits of every point, on the executor
-    shared = (data, kwargs_by_states, effective)
     items = [(k, centrals[k]) for k in keys]
     if executor is None:
         from plateaufit.parallel import SerialExecutor

@@ -21,7 +21,9 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from plateaufit.errors import FitError, PlateaufitError
-from plateaufit.pipeline.fits import covariance_kwargs
+from plateaufit.fit.scan import prepare_scan
+from plateaufit.pipeline.fits import covariance_kwargs, fit_kwargs
+from plateaufit.pipeline.keys import located
 from plateaufit.pipeline.inputs import load_ensemble
 from plateaufit.pipeline.prepare import (Prepared, choose_bins, effective_mass_kind, minimum_bins,
                                          prepare)
@@ -128,6 +130,7 @@ def _fit_lines(spec: Spec, index: int, fit: FitSpec, prepared: Prepared,
              f"{', '.join(fit.observables)}"]
     lines.append(f"  scan: tmin {_range_text(tmins)}, tmax {_range_text(tmaxs)} -> "
                  f"{len(points)} fit(s) with dof >= 1")
+    every_point = _every_point_line(spec, index, fit, prepared)   # fails where fit would
     block = np.concatenate([prepared.binned[n][:, lo:hi + 1] for n in fit.observables], axis=1)
     n_bins, n_points = block.shape
     c = spec.covariance
@@ -148,7 +151,22 @@ def _fit_lines(spec: Spec, index: int, fit: FitSpec, prepared: Prepared,
     if n_bins <= n_points:
         notes.add(f"fit {fit.name}: {n_bins} bins for {n_points} points in the widest range: "
                   "the unshrunk covariance is singular, so the fit relies on shrinkage")
+    lines.append(every_point)
     return lines
+
+
+def _every_point_line(spec: Spec, index: int, fit: FitSpec, prepared: Prepared) -> str:
+    """Set up every scan point as ``fit`` will (each covariance, each model): the check
+    fails exactly where the fit would, and names the point."""
+    data = {name: prepared.binned[name] for name in fit.observables}
+    with located(fit_index=index):
+        problems = prepare_scan(data, tmin=fit.tmin, tmax=fit.tmax, states=fit.states_values,
+                                **fit_kwargs(spec, fit))
+    worst_key, worst = max(((k, p.covariance.condition_number) for k, p in problems.items()),
+                           key=lambda kv: kv[1])
+    return (f"  every scan point's covariance can be used ({len(problems)} point(s)); the "
+            f"worst condition number is {worst:.3g}, at tmin {worst_key[0]}, tmax "
+            f"{worst_key[1]}, {worst_key[2]} state(s)")
 
 
 def _range_text(values: list[int]) -> str:
