@@ -14,7 +14,6 @@ penalty.
 from __future__ import annotations
 
 import numpy as np
-import scipy.stats
 
 __all__ = ["chi2_p_value", "hotelling_p_value", "aic"]
 
@@ -23,6 +22,8 @@ def chi2_p_value(chi2: float, dof: int) -> float:
     """``P(X >= chi2)`` for ``X ~ chi2(dof)``; NaN when ``dof < 1``."""
     if dof < 1 or not np.isfinite(chi2):
         return float("nan")
+    import scipy.stats   # deferred: scipy.stats takes ~0.6 s to import
+
     return float(scipy.stats.chi2.sf(chi2, dof))
 
 
@@ -48,6 +49,8 @@ def hotelling_p_value(chi2: float, dof: int, n_samples: int | None) -> float:
     """
     if n_samples is None or dof < 1 or n_samples <= dof or not np.isfinite(chi2):
         return float("nan")
+    import scipy.stats   # deferred (see chi2_p_value)
+
     n, d = float(n_samples), float(dof)
     return float(scipy.stats.f.sf((n - d) / (d * (n - 1.0)) * chi2, d, n - d))
 

@@ -20,7 +20,6 @@ SIAM J. Sci. Comput. 21 (1999) 1 -- scipy's trust-region reflective method.
 
 from __future__ import annotations
 
-import lmfit
 import numpy as np
 
 from plateaufit.fit.constraints import clip_into
@@ -117,6 +116,8 @@ def minimise(problem: LeastSquaresProblem, p0: np.ndarray, lo: np.ndarray, hi: n
     -------
     theta, ok, message, nfev
     """
+    import lmfit   # deferred: ~0.6 s to import, and most fits never need it
+
     model = problem.model
     start = clip_into(np.asarray(p0, dtype=float), lo, hi)
     params = lmfit.Parameters()

@@ -22,7 +22,6 @@ import warnings
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.signal import fftconvolve, lfilter
 
 from plateaufit.errors import DataError, SpecError
 from plateaufit.stats.autocorr import ShortChainWarning, _check_s, _pairs_sorted, tau_int
@@ -163,8 +162,12 @@ def lagged_covariances(dev: np.ndarray, blocks: list[tuple[int, int]], window: i
         kernel = np.concatenate(([0.0], weights[:taps]))
         rev = seg[::-1]
         if taps <= 64:
+            from scipy.signal import lfilter   # deferred: scipy.signal ~1 s to import
+
             z = lfilter(kernel, [1.0], rev, axis=0)
         else:
+            from scipy.signal import fftconvolve
+
             z = fftconvolve(rev, kernel[:, None], axes=0)[:length]
         lag_sum += seg.T @ z[::-1]
     return gamma0, lag_sum

@@ -107,7 +107,6 @@ from dataclasses import dataclass
 from typing import Iterator, Sequence
 
 import numpy as np
-from scipy.signal import lfilter
 
 from plateaufit.errors import DataError, SpecError
 from plateaufit.stats.autocorr import _check_s
@@ -275,6 +274,8 @@ class ReplicaModel:
             e[:, 1:] *= innov  # e[:, 0] is the stationary start (unit variance)
             for k in range(r):
                 if self.phi[k] != 0.0:
+                    from scipy.signal import lfilter   # deferred: ~1 s to import
+
                     e[k] = lfilter([1.0], [1.0, -self.phi[k]], e[k])
             np.matmul(e.T, self.mixing, out=out[start : start + length])
             start += length
