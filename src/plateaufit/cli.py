@@ -148,11 +148,15 @@ def _interrupted(exc: KeyboardInterrupt) -> int:
 
 
 def _check_parallel_options(args: argparse.Namespace) -> None:
-    """Refuse a bad --jobs / --scheduler before any data is read."""
+    """Refuse a bad --jobs, or a --scheduler nobody listens at, before any data is read."""
     from plateaufit.parallel import check_jobs, check_scheduler
 
     check_jobs(getattr(args, "jobs", None))
-    check_scheduler(getattr(args, "scheduler", None))
+    scheduler = check_scheduler(getattr(args, "scheduler", None))
+    if scheduler is not None:
+        from plateaufit.dask_executor import check_reachable
+
+        check_reachable(scheduler)
 
 
 def main(argv: Sequence[str] | None = None) -> int:

@@ -17,6 +17,7 @@ a user error inside a task comes back as the same error the local pool gives.
 
 from __future__ import annotations
 
+import threading
 from typing import Any
 
 from plateaufit.errors import PlateaufitError, SpecError
@@ -25,6 +26,8 @@ from plateaufit.parallel import (_CHUNKS_PER_WORKER, _NO_SHARED, SCHEDULER_CONNE
 
 #: The port a dask scheduler listens on when an address names none.
 _DASK_DEFAULT_PORT = 8786
+#: Seconds beyond the connection timeout allowed for the handshake with the scheduler.
+_HANDSHAKE_SPARE = 2.0
 
 
 _WHAT_TO_DO = ("start the scheduler and its workers (dask scheduler, dask worker ADDRESS, "
@@ -50,11 +53,14 @@ def _probe_tcp(address: str, timeout: float) -> None:
         if scheme != "tcp":
             return
         host, port = parse_host_port(location, default_port=_DASK_DEFAULT_PORT)
+        if not host:
+            raise ValueError("no host")
+        port = int(port)
     except (ValueError, TypeError) as exc:
         raise _scheduler_error(address, f"not an address ({exc})",
                                "write it as tcp://HOST:PORT") from None
     try:
-        with socket.create_connection((host, int(port)), timeout=timeout):
+        with socket.create_connection((host, port), timeout=timeout):
             pass
     except ConnectionRefusedError:
         raise _scheduler_error(address, f"nothing listens at {host}:{port} "
@@ -67,6 +73,58 @@ def _probe_tcp(address: str, timeout: float) -> None:
     except OSError as exc:
         raise _scheduler_error(address, f"cannot reach {host}:{port} "
                                         f"({exc.strerror or exc})") from None
+
+
+def check_reachable(address: str, timeout: float = SCHEDULER_CONNECT_TIMEOUT) -> None:
+    """Check, without connecting a client, that dask is installed and that
+    something listens at a ``tcp://`` address (other schemes: not checked).
+
+    Cheap enough for the command line to call before any data is read.
+
+    Raises
+    ------
+    SpecError
+        At ``--scheduler``: dask.distributed not installed; a malformed
+        address; an unknown host; nothing listening (refused at once); no
+        TCP answer within ``timeout`` seconds.
+    """
+    try:
+        import dask.distributed  # noqa: F401   (what Client needs)
+    except ImportError:
+        raise SpecError("--scheduler", "dask.distributed is not installed; "
+                                       "pip install 'plateaufit[cluster]'") from None
+    _probe_tcp(address, timeout)
+
+
+def _connect(client_class: Any, address: str, timeout: float) -> Any:
+    """``Client(address)``, given ``timeout`` seconds (and a little to spare) in all.
+
+    dask's own timeout covers the connection but not the handshake after it,
+    so a server that accepts and never answers would hold the constructor
+    forever; it runs in a daemon thread instead, which is abandoned (with its
+    half-made client) if it has not finished in time.
+    """
+    outcome: dict[str, Any] = {}
+
+    def connect() -> None:
+        try:
+            outcome["client"] = client_class(address, timeout=timeout, set_as_default=False)
+        except BaseException as exc:   # handed to the caller's thread below
+            outcome["error"] = exc
+
+    thread = threading.Thread(target=connect, name="plateaufit-dask-connect", daemon=True)
+    thread.start()
+    thread.join(timeout + _HANDSHAKE_SPARE)
+    if thread.is_alive():
+        raise _scheduler_error(address, f"no answer within {timeout:g} s (a dask scheduler "
+                                        "answers at once; is this the scheduler's address?)")
+    if "error" in outcome:
+        exc = outcome["error"]
+        if not isinstance(exc, Exception):
+            raise exc
+        # the address is user input: any failure to connect is the user's to fix
+        raise _scheduler_error(address, f"{type(exc).__name__}: {exc}")
+    return outcome["client"]
 
 
 class DaskExecutor(Executor):
@@ -92,18 +150,12 @@ class DaskExecutor(Executor):
     def __init__(self, address: str, timeout: float = SCHEDULER_CONNECT_TIMEOUT) -> None:
         super().__init__()
         self._client = None
-        try:
-            from dask.distributed import Client
-        except ImportError:
-            raise SpecError("--scheduler", "dask.distributed is not installed; "
-                                           "pip install 'plateaufit[cluster]'") from None
         self.address = address
         self.timeout = float(timeout)
-        _probe_tcp(address, self.timeout)
-        try:
-            self._client = Client(address, timeout=self.timeout, set_as_default=False)
-        except Exception as exc:   # the address is user input: any failure to connect
-            raise _scheduler_error(address, f"{type(exc).__name__}: {exc}") from None
+        check_reachable(address, self.timeout)
+        from dask.distributed import Client
+
+        self._client = _connect(Client, address, self.timeout)
         self.n_workers = self._count_workers()
 
     def _count_workers(self) -> int:
