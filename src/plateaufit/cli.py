@@ -9,8 +9,11 @@ from __future__ import annotations
 
 import argparse
 import os
+import signal
 import sys
-from collections.abc import Sequence
+import threading
+from collections.abc import Iterator, Sequence
+from contextlib import contextmanager
 
 from plateaufit import __version__
 from plateaufit.errors import PlateaufitError
@@ -92,18 +95,88 @@ def _one_blas_thread_per_process() -> None:
         os.environ.setdefault(name, "1")
 
 
+class _Stopped(KeyboardInterrupt):
+    """A stop signal (SIGTERM, SIGHUP) turned into the Ctrl-C path.
+
+    Raised in the main thread, so a run stops as on Ctrl-C: every ``with`` and
+    ``finally`` on the way out runs (the pool's workers are terminated, files
+    being written are not left half-written).
+    """
+
+    def __init__(self, signum: int) -> None:
+        super().__init__(signum)
+        self.signum = signum
+
+
+def _raise_stopped(signum: int, frame: object) -> None:
+    signal.signal(signum, signal.SIG_DFL)   # a second one ends the process at once
+    raise _Stopped(signum)
+
+
+#: signals that stop a run like Ctrl-C (SIGHUP: the terminal or ssh session went away)
+_STOP_SIGNALS = ("SIGTERM", "SIGHUP")
+
+
+@contextmanager
+def _stop_signals_interrupt() -> Iterator[None]:
+    """While inside, SIGTERM and SIGHUP raise :class:`_Stopped` in the main thread.
+
+    A signal that is ignored (``nohup``) or has a handler of the caller's own
+    is left alone, and the previous dispositions are restored on the way out
+    (``main`` may be called from Python). Outside the main thread Python
+    cannot install handlers, and nothing is changed.
+    """
+    saved: dict[int, object] = {}
+    if threading.current_thread() is threading.main_thread():
+        for name in _STOP_SIGNALS:
+            signum = getattr(signal, name, None)
+            if signum is not None and signal.getsignal(signum) is signal.SIG_DFL:
+                saved[signum] = signal.signal(signum, _raise_stopped)
+    try:
+        yield
+    finally:
+        for signum, previous in saved.items():
+            signal.signal(signum, previous)
+
+
+def _interrupted(exc: KeyboardInterrupt) -> int:
+    """One line on stderr for an interrupted run; the exit status 128 + signal."""
+    signum = exc.signum if isinstance(exc, _Stopped) else signal.SIGINT
+    name = signal.Signals(signum).name
+    print(f"plateaufit: interrupted ({name}); the run did not finish", file=sys.stderr)
+    return 128 + int(signum)
+
+
+def _check_parallel_options(args: argparse.Namespace) -> None:
+    """Refuse a bad --jobs, or a --scheduler nobody listens at, before any data is read."""
+    from plateaufit.parallel import check_jobs, check_scheduler
+
+    check_jobs(getattr(args, "jobs", None))
+    scheduler = check_scheduler(getattr(args, "scheduler", None))
+    if scheduler is not None:
+        from plateaufit.dask_executor import check_reachable
+
+        check_reachable(scheduler)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
-    """Run the command line; return the exit status (0 ok, 2 user error)."""
+    """Run the command line; return the exit status.
+
+    0 ok, 2 user error, 128 + the signal's number when interrupted (130 for
+    Ctrl-C, 143 for SIGTERM, 129 for SIGHUP).
+    """
     _one_blas_thread_per_process()
     args = _build_parser().parse_args(argv)
     try:
-        return _dispatch(args)
-    except PlateaufitError as err:
-        print(f"plateaufit: error: {err}", file=sys.stderr)
-        return 2
-    except KeyboardInterrupt:
-        print("plateaufit: interrupted; no results were written", file=sys.stderr)
-        return 130
+        with _stop_signals_interrupt():
+            try:
+                _check_parallel_options(args)
+                return _dispatch(args)
+            except PlateaufitError as err:
+                print(f"plateaufit: error: {err}", file=sys.stderr)
+                return 2
+    except KeyboardInterrupt as exc:   # reported once the signal handlers are restored
+        return _interrupted(exc)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -24,6 +24,44 @@ instead of once per task, and ``fn`` is then called as ``fn(shared, item)``.
 
 Errors a user can fix (:class:`~plateaufit.errors.PlateaufitError`) raised in
 a worker are re-raised in the caller with their ``where`` and message.
+
+How many workers
+----------------
+``jobs`` is capped at what can be useful: at most the number of CPUs this
+process may run on (:func:`usable_cpus`: the scheduler affinity mask where the
+system has one, else ``os.cpu_count()``), and each :meth:`ProcessExecutor.map`
+starts at most one worker per task. ``jobs=1000`` on two cores starts two
+workers; a pool that later gets more tasks than workers is replaced by a
+larger one, never beyond the cap.
+
+Workers never outlive the run
+-----------------------------
+A local worker stops as soon as the process that started it is gone, however
+it went (an exception, SIGTERM, SIGKILL, a crash). The pool's initializer
+(:func:`plateaufit.worker_lifetime.worker_init`) arms, on Linux, the kernel's
+parent-death signal (``prctl(PR_SET_PDEATHSIG, SIGKILL)`` through ctypes; for
+pools created from the main thread, since the kernel ties it to the thread
+that started the worker) and starts, everywhere, a watchdog thread waiting on
+the parent's sentinel from :func:`multiprocessing.parent_process` (the read
+end of the pipe the parent started the worker through, whose write end only
+the parent holds; a process handle on Windows), which ends the worker with
+``os._exit`` when the parent is gone; without a sentinel it polls
+``os.getppid()`` against the original parent id. Workers ignore SIGINT: a
+Ctrl-C reaches the whole process group and the parent alone decides.
+
+On an interruption in the caller (KeyboardInterrupt: Ctrl-C, or SIGTERM,
+which the command line turns into the same path) :meth:`ProcessExecutor.map`
+and leaving the ``with`` block on an exception (``close(cancel=True)``)
+terminate the workers instead of waiting for their current tasks: SIGTERM,
+then SIGKILL for one still alive after two seconds.
+
+Dask
+----
+``scheduler="tcp://host:8786"`` runs the tasks on an existing
+dask.distributed cluster (:class:`plateaufit.dask_executor.DaskExecutor`): a
+closed port is refused at once, a scheduler that does not answer within
+``connect_timeout`` seconds is a clear error, and the run's tasks are
+cancelled on interruption; the cluster's workers are the cluster's.
 """
 
 from __future__ import annotations
@@ -31,16 +69,70 @@ from __future__ import annotations
 import numbers
 import os
 import sys
+import threading
 from collections.abc import Callable, Iterable, Sequence
 from typing import Any
 
 from plateaufit.errors import FitError, PlateaufitError, SpecError
+from plateaufit.worker_lifetime import terminate_workers, worker_init
 
 #: Marker for "no shared data": ``fn`` is then called as ``fn(item)``.
 _NO_SHARED = object()
 #: Chunks per worker: small enough for a useful progress bar and load balance,
 #: large enough that shared data is sent only a few times per worker.
 _CHUNKS_PER_WORKER = 4
+#: Seconds :func:`make_executor` lets a dask scheduler take to answer.
+SCHEDULER_CONNECT_TIMEOUT = 10.0
+
+
+def usable_cpus() -> int:
+    """Number of CPUs this process may run on (at least 1).
+
+    The scheduler affinity mask (``os.sched_getaffinity``) where the system has
+    one -- a batch system or ``taskset`` may give a job fewer cores than the
+    machine has -- else ``os.cpu_count()``.
+    """
+    getaffinity = getattr(os, "sched_getaffinity", None)
+    if getaffinity is not None:
+        try:
+            return max(1, len(getaffinity(0)))
+        except OSError:
+            pass
+    return max(1, os.cpu_count() or 1)
+
+
+def check_jobs(jobs: Any) -> int | None:
+    """Validate a ``--jobs`` value: ``None`` (all usable CPUs) or an integer >= 1.
+
+    Raises
+    ------
+    SpecError
+        At ``--jobs``, for zero, a negative number or anything not an integer.
+    """
+    if jobs is None:
+        return None
+    if isinstance(jobs, bool) or not isinstance(jobs, numbers.Integral) or jobs < 1:
+        raise SpecError("--jobs", f"the number of jobs must be a positive integer, got {jobs!r}; "
+                                  "use 1 to run serially, or leave it out to use every "
+                                  "core this process may run on")
+    return int(jobs)
+
+
+def check_scheduler(scheduler: Any) -> str | None:
+    """Validate a ``--scheduler`` value: ``None`` or a non-empty address (stripped).
+
+    Raises
+    ------
+    SpecError
+        At ``--scheduler``, for an empty address or one that is not text.
+    """
+    if scheduler is None:
+        return None
+    if not isinstance(scheduler, str) or not scheduler.strip():
+        raise SpecError("--scheduler", f"expected a scheduler address such as tcp://host:8786, "
+                                       f"got {scheduler!r}; give the address or leave out "
+                                       "--scheduler")
+    return scheduler.strip()
 
 
 class _RemoteFailure:
@@ -105,7 +197,7 @@ class Executor:
     Attributes
     ----------
     n_workers : int
-        Number of workers tasks are spread over (1 for serial).
+        Number of workers tasks are spread over at most (1 for serial).
     kind : str
         ``"serial"``, ``"processes"`` or ``"dask"``.
     """
@@ -122,7 +214,8 @@ class Executor:
         self.close(cancel=exc_type is not None)
 
     def close(self, cancel: bool = False) -> None:
-        """Release workers (nothing to do for the serial executor)."""
+        """Release the workers; with ``cancel``, stop running tasks instead of
+        waiting for them (nothing to do for the serial executor)."""
 
     def map(self, fn: Callable[..., Any], items: Iterable[Any], *, shared: Any = _NO_SHARED,
             progress: bool = False, desc: str | None = None) -> list[Any]:
@@ -169,44 +262,72 @@ class SerialExecutor(Executor):
 class ProcessExecutor(Executor):
     """Runs tasks on a pool of local worker processes (``spawn`` start method).
 
-    The pool is started on the first :meth:`map` with more than one task, so
-    an executor that is never used costs nothing.
+    The pool is started on the first :meth:`map` with more than one task,
+    with one worker per task up to ``n_workers`` (itself at most
+    :func:`usable_cpus`), so an executor that is never used costs nothing.
+    Workers end with the calling process however it ends (see the module
+    docstring).
     """
 
     kind = "processes"
 
     def __init__(self, n_workers: int) -> None:
         super().__init__()
-        self.n_workers = int(n_workers)
-        self._pool = None
+        self.n_workers = max(1, min(int(n_workers), usable_cpus()))
+        self._pool: Any = None
+        self._pool_size = 0
+        self._pool_thread: int | None = None   # creating thread, when the death signal is armed
 
-    def _get_pool(self):
-        if self._pool is None:
-            import multiprocessing
-            from concurrent.futures import ProcessPoolExecutor
+    @property
+    def pool_size(self) -> int:
+        """Worker processes the running pool may have (0 when no pool runs)."""
+        return self._pool_size if self._pool is not None else 0
 
-            self._pool = ProcessPoolExecutor(max_workers=self.n_workers,
-                                             mp_context=multiprocessing.get_context("spawn"))
+    def _get_pool(self, n_tasks: int) -> Any:
+        want = max(1, min(self.n_workers, n_tasks))
+        if self._pool is not None:
+            foreign = self._pool_thread not in (None, threading.get_ident())
+            if self._pool_size >= want and not foreign:
+                return self._pool
+            want = max(want, self._pool_size)
+            self.close()            # idle between maps: replaced by a larger one / one for this thread
+        import multiprocessing
+        from concurrent.futures import ProcessPoolExecutor
+
+        in_main = threading.current_thread() is threading.main_thread()
+        self._pool = ProcessPoolExecutor(max_workers=want,
+                                         mp_context=multiprocessing.get_context("spawn"),
+                                         initializer=worker_init,
+                                         initargs=(os.getpid(), in_main))
+        self._pool_size = want
+        self._pool_thread = threading.get_ident() if in_main else None
         return self._pool
 
     def close(self, cancel: bool = False) -> None:
-        if self._pool is not None:
-            self._pool.shutdown(wait=True, cancel_futures=cancel)
-            self._pool = None
+        pool, self._pool, self._pool_size = self._pool, None, 0
+        if pool is None:
+            return
+        if cancel:
+            # Workers first: the pool's manager thread then fails the pending
+            # futures itself (cancelling them as well would race with it).
+            terminate_workers(pool)
+        pool.shutdown(wait=True)
 
     def map(self, fn, items, *, shared=_NO_SHARED, progress=False, desc=None):
         items = list(items)
-        if len(items) <= 1:
+        if len(items) <= 1 or self.n_workers <= 1:
             return super().map(fn, items, shared=shared, progress=progress, desc=desc)
         from concurrent.futures import FIRST_COMPLETED, wait
         from concurrent.futures.process import BrokenProcessPool
 
-        chunks = _split(items, self.n_workers * _CHUNKS_PER_WORKER)
-        pool = self._get_pool()
+        pool = self._get_pool(len(items))
+        chunks = _split(items, self._pool_size * _CHUNKS_PER_WORKER)
         bar = _progress_bar(len(items), progress, desc)
-        futures = [pool.submit(_run_chunk, fn, shared is not _NO_SHARED,
-                               None if shared is _NO_SHARED else shared, chunk) for chunk in chunks]
+        futures: list[Any] = []
         try:
+            for chunk in chunks:
+                futures.append(pool.submit(_run_chunk, fn, shared is not _NO_SHARED,
+                                           None if shared is _NO_SHARED else shared, chunk))
             pending = set(futures)
             sizes = {fut: len(chunk) for fut, chunk in zip(futures, chunks)}
             while pending:
@@ -215,81 +336,37 @@ class ProcessExecutor(Executor):
                     bar.update(sizes[fut])
             return _collect(fut.result() for fut in futures)
         except BrokenProcessPool:
-            self._pool = None
+            self.close(cancel=True)
             raise FitError("--jobs", "a worker process stopped abruptly (killed, out of memory, "
                                      "or started from a script without an "
                                      "`if __name__ == \"__main__\":` guard); rerun with "
                                      "--jobs 1 (jobs=1) to run in-process") from None
-        except BaseException:
-            for fut in futures:
-                fut.cancel()
+        except PlateaufitError:   # from _collect: every chunk has finished, the pool is fine
+            raise
+        except BaseException:     # KeyboardInterrupt (Ctrl-C, SIGTERM), SystemExit, a bug
+            self.close(cancel=True)
             raise
         finally:
             bar.close()
 
 
-class DaskExecutor(Executor):
-    """Runs tasks on a dask.distributed cluster through its scheduler address."""
-
-    kind = "dask"
-
-    def __init__(self, address: str, timeout: float = 20.0) -> None:
-        super().__init__()
-        try:
-            from dask.distributed import Client
-        except ImportError:
-            raise SpecError("--scheduler", "dask.distributed is not installed; "
-                                           "pip install 'plateaufit[cluster]'") from None
-        try:
-            self._client = Client(address, timeout=timeout, set_as_default=False)
-        except (OSError, TimeoutError, ValueError) as exc:
-            raise SpecError("--scheduler", f"cannot connect to the dask scheduler at "
-                                           f"{address!r} ({exc}); start one (dask scheduler) "
-                                           "and its workers, or leave out --scheduler") from None
-        self.address = address
-        self.n_workers = max(1, len(self._client.scheduler_info().get("workers", {})))
-
-    def close(self, cancel: bool = False) -> None:
-        if self._client is not None:
-            self._client.close()
-            self._client = None
-
-    def map(self, fn, items, *, shared=_NO_SHARED, progress=False, desc=None):
-        from dask.distributed import as_completed
-
-        items = list(items)
-        if not items:
-            return []
-        chunks = _split(items, self.n_workers * _CHUNKS_PER_WORKER)
-        has_shared = shared is not _NO_SHARED
-        shared_ref = self._client.scatter(shared, broadcast=True) if has_shared else None
-        futures = [self._client.submit(_run_chunk, fn, has_shared, shared_ref, chunk, pure=False)
-                   for chunk in chunks]
-        sizes = {fut.key: len(chunk) for fut, chunk in zip(futures, chunks)}
-        bar = _progress_bar(len(items), progress, desc)
-        try:
-            for fut in as_completed(futures, loop=self._client.loop):
-                bar.update(sizes[fut.key])
-            return _collect(self._client.gather(futures))
-        except BaseException:
-            self._client.cancel(futures)
-            raise
-        finally:
-            bar.close()
-
-
-def make_executor(jobs: int | None = None, scheduler: str | None = None) -> Executor:
+def make_executor(jobs: int | None = None, scheduler: str | None = None, *,
+                  connect_timeout: float = SCHEDULER_CONNECT_TIMEOUT) -> Executor:
     """Choose an executor for independent tasks.
 
     Parameters
     ----------
     jobs : int, optional
-        ``1``: serial, in this process. ``None``: one worker process per core
-        (``os.cpu_count()``). ``> 1``: that many local worker processes.
-        Ignored when ``scheduler`` is given (the cluster decides).
+        ``1``: serial, in this process. ``None``: one worker process per CPU
+        this process may use (:func:`usable_cpus`). ``> 1``: that many local
+        worker processes, but at most :func:`usable_cpus` (and at most one per
+        task). Ignored when ``scheduler`` is given (the cluster decides), but
+        still validated.
     scheduler : str, optional
         Address of a running dask.distributed scheduler (``tcp://host:8786``);
         tasks then run on its workers. Needs ``pip install 'plateaufit[cluster]'``.
+    connect_timeout : float, optional
+        Seconds to wait for the scheduler to answer.
 
     Returns
     -------
@@ -302,16 +379,23 @@ def make_executor(jobs: int | None = None, scheduler: str | None = None) -> Exec
         ``--jobs`` not a positive integer; ``--scheduler`` given but dask is
         not installed or the scheduler cannot be reached.
     """
+    jobs = check_jobs(jobs)
+    scheduler = check_scheduler(scheduler)
     if scheduler is not None:
-        if not isinstance(scheduler, str) or not scheduler.strip():
-            raise SpecError("--scheduler", f"expected a scheduler address such as "
-                                           f"tcp://host:8786, got {scheduler!r}")
-        return DaskExecutor(scheduler.strip())
-    if jobs is None:
-        jobs = os.cpu_count() or 1
-    if isinstance(jobs, bool) or not isinstance(jobs, numbers.Integral) or jobs < 1:
-        raise SpecError("--jobs", f"the number of jobs must be a positive integer, got {jobs!r}; "
-                                  "use 1 to run serially")
-    if jobs == 1:
+        from plateaufit.dask_executor import DaskExecutor
+
+        return DaskExecutor(scheduler, timeout=connect_timeout)
+    n_workers = usable_cpus() if jobs is None else min(jobs, usable_cpus())
+    if n_workers == 1:
         return SerialExecutor()
-    return ProcessExecutor(int(jobs))
+    return ProcessExecutor(n_workers)
+
+
+def __getattr__(name: str) -> Any:
+    # ``plateaufit.parallel.DaskExecutor`` still works; the module is imported
+    # only when asked for (it imports from this one).
+    if name == "DaskExecutor":
+        from plateaufit.dask_executor import DaskExecutor
+
+        return DaskExecutor
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
