@@ -123,8 +123,12 @@ class GevpSolutions:
         if key not in self._solved:
             m = self.matrix(name)
             matrix = self.spec.matrices[name]
-            how = (f"t0: half gives t0 = {t0} for fit {fit_name}" if matrix.is_half and fit_name
-                   else f"t0 = {t0}")
+            if not matrix.is_half:
+                how = f"t0 = {t0}"
+            elif fit_name:
+                how = f"t0: half gives t0 = {t0} for fit {fit_name}"
+            else:
+                how = f"t0: half, reference t0 = {t0} (the smallest t0 of its fits)"
             try:
                 self._solved[key] = solve_gevp(m.central, m.samples, int(t0))
             except (DataError, SpecError) as err:
@@ -151,9 +155,9 @@ def reference_t0(spec: Spec, name: str) -> int:
 def solve_all(spec: Spec, solutions: GevpSolutions) -> None:
     """Solve every GEVP the run will need, before any fit (a bad ``C(t0)`` stops it early)."""
     for name in spec.matrices:
-        solutions.at(name, reference_t0(spec, name))
         for fit in spec.matrix_fits(name):
             solutions.at(name, spec.fit_t0(fit), fit_name=fit.name)
+        solutions.at(name, reference_t0(spec, name))
 
 
 def level_data(result: GevpResult, level: int, name: str

@@ -37,7 +37,7 @@ _NOISE = 0.25
 
 
 def _t0_text(matrix: MatrixResult) -> str:
-    return "t0 = ceil(t/2)" if matrix.t0_rule == "half" else f"t0 = {matrix.t0}"
+    return "t0 = ⌈t/2⌉" if matrix.t0_rule == "half" else f"t0 = {matrix.t0}"
 
 
 def _color(n: int) -> str:
@@ -112,8 +112,7 @@ def plot_principal_energies(matrix: MatrixResult,
         ax.set_xlabel("t/a")
         ax.xaxis.set_major_locator(matplotlib.ticker.MaxNLocator(integer=True))
         ax.set_ylabel(f"a E_eff ({text(kind)})")
-        ax.set_title(text(f"{short(matrix.name)}: principal effective energies, "
-                          f"{_t0_text(matrix)}"))
+        ax.set_title(text(f"{short(matrix.name)}: levels' E_eff, {_t0_text(matrix)}"))
         if handles:
             fig.legend([h for h, _ in handles], [lab for _, lab in handles],
                        loc="outside lower center", ncol=2, fontsize=6)
