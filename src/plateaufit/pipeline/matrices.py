@@ -52,6 +52,7 @@ from plateaufit.pipeline.matrix_results import (LevelCheck, MatrixResult, Overla
 from plateaufit.pipeline.prepare import Prepared, effective_mass_kind
 from plateaufit.pipeline.results import EffectiveMassResult, FitResult
 from plateaufit.pipeline.summary import summarise_scan
+from plateaufit.report.tables import format_value_error
 from plateaufit.specfile import Spec
 from plateaufit.stats.covariance import covariance_of_mean
 from plateaufit.stats.gevp import GevpResult, solve_gevp
@@ -422,7 +423,7 @@ def check_lines(spec: Spec, prepared: Prepared) -> list[str]:
         for n in range(res.n_levels):
             shown = [t for t in (t0 + 1, t0 + 3, t0 + 5) if t < eff.t.size]
             pieces = ", ".join(
-                f"t={t}: {eff.value[n, t]:.4g}({eff.error[n, t]:.2g})"
+                f"t={t}: {format_value_error(float(eff.value[n, t]), float(eff.error[n, t]))}"
                 if np.isfinite(eff.value[n, t]) and np.isfinite(eff.error[n, t])
                 else f"t={t}: undefined" for t in shown)
             lines.append(f"  level {n} effective energy ({eff.kind}): {pieces}")

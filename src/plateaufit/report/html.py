@@ -224,7 +224,10 @@ def _section_results(results: Mapping[str, Any]) -> str:
         if math.isfinite(_num(chosen.get("p_value"))):
             meta.append(f"p = {_num(chosen.get('p_value')):.3g}")
         out.append(f"<h3>{_e(fit_name)}</h3>")
-        out.append(f'<p class="note">observables {_e(obs)}; model {_e(fit.get("model", ""))}; '
+        data_text = (f"level {_e(fit.get('level'))} of matrix {_e(fit['matrix'])} (t0 = "
+                     f"{_e(fit.get('t0'))}; see Correlator matrices)" if fit.get("matrix")
+                     else f"observables {_e(obs)}")
+        out.append(f'<p class="note">{data_text}; model {_e(fit.get("model", ""))}; '
                    + "; ".join(meta) + "</p>")
         head = ["Parameter", "value(total)", "value(stat)(sys)", "stat", "sys"]
         numeric = [False, True, True, True, True]
