@@ -179,7 +179,8 @@ def workload_levels(raw: np.ndarray, time_extent: int, bin_size: int, t0: int) -
     stages["overlaps"] = time.perf_counter() - c
     total = time.perf_counter() - start
     truth = GEVP_TRUTH["energies"][:r]
-    return {"seconds": total, "pipeline_seconds": pipeline_run(raw, time_extent, bin_size, t0), "stages_seconds": stages, "n_fits": n_fits,
+    return {"seconds": total, "pipeline_seconds": pipeline_run(raw, time_extent, bin_size, t0),
+            "stages_seconds": stages, "n_fits": n_fits,
             "n_refits": n_fits * int(res.n_samples),
             "energies": [v for v, _ in results], "errors": [e for _, e in results],
             "pulls": [(v - e_true) / e for (v, e), e_true in zip(results, truth)]}

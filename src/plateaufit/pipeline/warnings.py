@@ -15,6 +15,7 @@ from collections.abc import Callable, Iterator
 from dataclasses import dataclass, replace
 
 from plateaufit.fit.diagnostics import FLAG_CODES
+from plateaufit.pipeline.matrix_results import LevelCheck
 from plateaufit.pipeline.results import FitResult, Results, RunWarning
 
 __all__ = ["LOW_P_VALUE", "STRONG_SHRINKAGE", "LEVEL_SEPARATION", "GRID_ASYMMETRY",
@@ -144,7 +145,7 @@ def _chosen_flagged(results: Results) -> Iterator[RunWarning]:
                              f"fit {name}: the {which} fit ({shown.label}) is flagged: {reasons}")
 
 
-def _matrix_level_checks(results: Results):
+def _matrix_level_checks(results: Results) -> Iterator[tuple[str, str, LevelCheck]]:
     for name, matrix in results.matrices.items():
         for fit_name, check in matrix.fits.items():
             yield name, fit_name, check
