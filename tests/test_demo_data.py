@@ -60,7 +60,8 @@ def test_generated_files_match_the_committed_ones_byte_for_byte(generated):
 
 
 def test_data_are_small():
-    assert sum(p.stat().st_size for p in COMMITTED.iterdir()) < 3_000_000
+    # 2.7 MB for the four correlators, 1.7 MB for the 3 x 3 matrix (nine float32 arrays)
+    assert sum(p.stat().st_size for p in COMMITTED.iterdir()) < 5_000_000
 
 
 def test_spec_file_is_the_generated_spec_and_carries_the_truth():

@@ -22,7 +22,13 @@ nucleon     positive-parity nucleon                csv       antiperio-  exp
                                                              folded
 ==========  =====================================  ========  ==========  ======
 
-Each correlator is a sum of two states (ground and first excited) with known
+A third set of observables is a correlator matrix (:mod:`~plateaufit.demo.matrix`):
+the axial channel measured with three operators (local ``L``, smeared ``S``,
+wide ``W``) as the nine entries ``axial_LL .. axial_WW`` of ``axial.npz``, with
+four states, so the three-operator basis cannot resolve the fourth; the demo
+fits its three levels from the GEVP at ``t0 = 2``.
+
+Each of the four correlators above is a sum of two states (ground and first excited) with known
 energies and amplitudes. The two pion correlators share the states and factorise,
 ``A_n = Z_n.source * Z_n.sink``, with operators ``S`` (smeared) and ``L``
 (local), so a simultaneous or factorised fit is possible.

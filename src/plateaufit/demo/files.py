@@ -18,6 +18,7 @@ from plateaufit.atomic import write_bytes
 from plateaufit.demo.scenario import (DEMO_SEED, ENSEMBLE_NAME, OBSERVABLES, PION_MASS, STREAMS,
                                       TIME_EXTENT, VECTOR_DATASET, VECTOR_IDS_DATASET,
                                       DemoObservable, by_name, demo_truth)
+from plateaufit.demo.matrix import AXIAL, matrix_npz_bytes, simulate_matrix
 from plateaufit.demo.simulation import simulate
 
 def _stream_summary() -> str:
@@ -99,6 +100,12 @@ def _readme(seed: int) -> str:
         "Lepage 1989) with E_noise = 2 m_pi (mesons), 3 m_pi (nucleon), m_pi = "
         f"{PION_MASS:g}.",
         "",
+        f"{AXIAL.file}: a {AXIAL.size} x {AXIAL.size} correlator matrix of the axial channel, "
+        f"operators {', '.join(AXIAL.operators)},",
+        f"one float32 array (n_cfg, T) per entry XY (sink X, source Y); four states, "
+        f"E = {', '.join(f'{e:g}' for e in AXIAL.energies)}",
+        f"(the fourth not resolved by {AXIAL.size} operators); tau_int = {AXIAL.tau_int:.2f}.",
+        "",
     ])
 
 
@@ -119,6 +126,17 @@ def _truth_document(seed: int) -> dict[str, Any]:
             } for obs in OBSERVABLES
         },
         "fits": demo_truth(),
+        "matrices": {
+            AXIAL.name: {
+                "file": AXIAL.file, "format": "npz", "form": "cosh",
+                "operators": list(AXIAL.operators), "entries": AXIAL.entries,
+                "energies": list(AXIAL.energies),
+                "overlaps": [list(row) for row in AXIAL.overlaps],
+                "noise": {"r0": AXIAL.noise0, "E_noise": 2 * PION_MASS, "xi_t": AXIAL.xi,
+                          "shared": AXIAL.shared, "pair": AXIAL.pair, "phi": AXIAL.phi},
+                "tau_int": AXIAL.tau_int,
+            },
+        },
     }
 
 
@@ -134,7 +152,7 @@ def demo_files(seed: int = DEMO_SEED) -> dict[str, bytes]:
     -------
     dict
         ``pion_ss.txt``, ``pion_sl.npy``, ``vector.h5``, ``nucleon.csv``,
-        ``truth.json`` and ``README.txt``.
+        ``axial.npz`` (the correlator matrix), ``truth.json`` and ``README.txt``.
     """
     sim = simulate(seed)
     n_cfg = sim["streams"].shape[0]
@@ -144,6 +162,7 @@ def demo_files(seed: int = DEMO_SEED) -> dict[str, bytes]:
         "vector.h5": _hdf5_bytes(sim["values"]["vector"], sim["config_ids"]),
         "nucleon.csv": _csv_file(sim["text"]["nucleon"], sim["streams"],
                                  sim["config_ids"]).encode(),
+        AXIAL.file: matrix_npz_bytes(simulate_matrix(AXIAL, seed)),
         "truth.json": (json.dumps(_truth_document(seed), indent=2, sort_keys=True)
                        + "\n").encode(),
         "README.txt": _readme(seed).encode(),

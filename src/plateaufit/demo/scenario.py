@@ -136,8 +136,10 @@ def demo_truth() -> dict[str, dict[str, float]]:
     -------
     dict
         Fit name -> parameter name (``E0``, ``E1``, ``A0.pion_ss``, ``Z0.S``, ...)
-        -> true value. Amplitudes follow the models' conventions:
-        ``A (exp(-E t) + exp(-E (T - t)))`` for cosh, ``A exp(-E t)`` for exp.
+        -> true value; the level fits of the matrix (``axial_0``, ...) have their
+        level's energy as ``E0`` (:func:`plateaufit.demo.matrix.matrix_truth`).
+        Amplitudes follow the models' conventions: ``A (exp(-E t) + exp(-E (T - t)))``
+        for cosh, ``A exp(-E t)`` for exp.
     """
     pion_ss, pion_sl = by_name("pion_ss"), by_name("pion_sl")
     vector, nucleon = by_name("vector"), by_name("nucleon")
@@ -153,11 +155,14 @@ def demo_truth() -> dict[str, dict[str, float]]:
     for n in range(2):
         for op in ("S", "L"):
             factorised[f"Z{n}.{op}"] = _Z_PION[op][n]
+    from plateaufit.demo.matrix import matrix_truth   # it imports this module
+
     return {
         "pion": states([pion_ss, pion_sl]),
         "pion_factorised": factorised,
         "vector": states([vector]),
         "nucleon": states([nucleon]),
+        **matrix_truth(),
     }
 
 

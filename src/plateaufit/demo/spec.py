@@ -8,6 +8,7 @@ from __future__ import annotations
 
 from importlib import resources
 
+from plateaufit.demo.matrix import AXIAL, DemoMatrix
 from plateaufit.demo.scenario import (DEMO_DERIVED, ENSEMBLE_NAME, STREAMS, TIME_EXTENT,
                                       VECTOR_DATASET, VECTOR_IDS_DATASET, demo_derived_truth,
                                       demo_truth)
@@ -20,6 +21,22 @@ def _template() -> str:
 
 def _yaml_number(x: float) -> str:
     return repr(float(x))
+
+
+def matrix_spec_parts(matrix: DemoMatrix, data_dir: str) -> dict[str, str]:
+    """The template fields of a demo matrix: its observables, grid and operator labels."""
+    observables = []
+    for entry in matrix.entries:
+        head = f"  {matrix.observable(entry)}:"
+        if entry == matrix.entries[0]:
+            head = head.ljust(34) + "# the matrix entries: npz arrays (float32)"
+        observables += [head,
+                        f"    file: {data_dir}/{matrix.file}",
+                        f"    array: {entry}",
+                        "    boundary: periodic"]
+    grid = [f"      - [{', '.join(row)}]" for row in matrix.grid()]
+    return {"matrix": matrix.name, "matrix_observables": "\n".join(observables),
+            "matrix_grid": "\n".join(grid), "matrix_operators": ", ".join(matrix.operators)}
 
 
 def demo_spec_text(data_dir: str = "../examples/demo_data",
@@ -50,6 +67,7 @@ def demo_spec_text(data_dir: str = "../examples/demo_data",
         ensemble=ENSEMBLE_NAME, T=TIME_EXTENT,
         stream_counts=", ".join(str(n) for _, n in STREAMS),
         data=data_dir.rstrip("/"), output=output_dir,
+        **matrix_spec_parts(AXIAL, data_dir.rstrip("/")),
         vector_dataset=VECTOR_DATASET, vector_ids=VECTOR_IDS_DATASET,
         derived="\n".join(derived_lines) + "\n",
         truth="\n".join(truth_lines) + "\n")

@@ -212,8 +212,15 @@ def summarise(spec: Spec, prepared: Prepared) -> str:
         lines.append("")
         lines += _observable_lines(spec, prepared, name, own, notes)
     for index, fit in enumerate(spec.fits):
+        if fit.matrix is not None:
+            continue                      # with its matrix, below
         lines.append("")
         lines += _fit_lines(spec, index, fit, prepared, notes)
+    if spec.matrices:
+        from plateaufit.pipeline.matrices import check_lines
+
+        lines.append("")
+        lines += check_lines(spec, prepared)
     if spec.derived:
         lines.append("")
         lines.append("derived quantities (jackknife over the same bins as the fits):")

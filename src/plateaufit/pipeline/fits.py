@@ -53,14 +53,17 @@ def fit_kwargs(spec: Spec, fit: FitSpec) -> dict[str, Any]:
 def n_scan_points(spec: Spec, fit: FitSpec) -> int:
     """How many (tmin, tmax, states) points of the fit leave a degree of freedom."""
     kwargs = fit_kwargs(spec, fit)
-    return len(scan_points(fit.tmin, fit.tmax, fit.states_values, observables=fit.observables,
+    return len(scan_points(fit.tmin, fit.tmax, fit.states_values, observables=fit.correlators,
                            oscillating=kwargs["oscillating"], constant=kwargs["constant"],
                            operators=kwargs["operators"], formula=kwargs["formula"]))
 
 
 def run_fit(spec: Spec, index: int, prepared: Prepared, *, executor: Any = None,
-            progress: bool = False) -> FitResult:
+            progress: bool = False, solutions: Any = None) -> FitResult:
     """Scan fit ``fits[index]`` of ``spec`` on the prepared data; choose or average.
+
+    A fit of a matrix level goes to :func:`plateaufit.pipeline.matrices.run_level_fit`
+    (``solutions``: its shared :class:`~plateaufit.pipeline.matrices.GevpSolutions`).
 
     Returns
     -------
@@ -73,6 +76,11 @@ def run_fit(spec: Spec, index: int, prepared: Prepared, *, executor: Any = None,
         At the spec key (``fits[i].tmin``, ``covariance.shrinkage``, ...).
     """
     fit = spec.fits[index]
+    if fit.matrix is not None:
+        from plateaufit.pipeline.matrices import run_level_fit   # it imports this module
+
+        return run_level_fit(spec, index, prepared, solutions=solutions, executor=executor,
+                             progress=progress)
     data = {name: prepared.binned[name] for name in fit.observables}
     with located(fit_index=index):
         fits = scan(data, tmin=fit.tmin, tmax=fit.tmax, states=fit.states_values,

@@ -107,7 +107,7 @@ def minimum_bins(spec: Spec) -> int:
     if spec.covariance.shrinkage == "none":
         for fit in spec.fits:
             span = max(fit.tmax_values) - min(fit.tmin_values) + 1
-            least = max(least, span * len(fit.observables) + 1)
+            least = max(least, span * len(fit.correlators) + 1)
     return least
 
 

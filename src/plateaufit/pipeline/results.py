@@ -30,11 +30,14 @@ from typing import Any
 
 import numpy as np
 
+from plateaufit.pipeline.matrix_results import MatrixResult
+
 __all__ = [
     "ParamEstimate", "PointEstimate", "ScanPointResult", "PointSummary", "ChosenResult",
     "EffectiveMassResult", "CovarianceSummary", "FitResult", "TauIntSummary",
     "AutocorrelationSummary", "BinningStudySummary", "ObservableSummary", "EnsembleResult",
-    "DerivedQuantity", "RunWarning", "Results", "jsonable", "as_float", "TAU_INT_CONVENTION",
+    "DerivedQuantity", "RunWarning", "Results", "MatrixResult", "jsonable", "as_float",
+    "TAU_INT_CONVENTION",
 ]
 
 TAU_INT_CONVENTION = "1/2 + sum_{t>=1} rho(t)"
@@ -368,6 +371,10 @@ class FitResult:
     covariance: CovarianceSummary | None = None
     warnings: list[str] = field(default_factory=list)
     derived_inputs: dict[str, Any] = field(default_factory=dict, repr=False, compare=False)
+    #: a fit of a level of a correlator matrix: the matrix, the level and the GEVP's t0
+    matrix: str | None = None
+    level: int | None = None
+    t0: int | None = None
 
     def chosen_point(self) -> ScanPointResult | None:
         """The scan point behind the chosen result (see :class:`ChosenResult`)."""
@@ -388,6 +395,8 @@ class FitResult:
         }
         if self.covariance is not None:
             out["covariance"] = self.covariance.to_dict()
+        if self.matrix is not None:
+            out.update(matrix=self.matrix, level=self.level, t0=self.t0)
         return out
 
     @classmethod
@@ -399,7 +408,10 @@ class FitResult:
                    effective_mass={k: EffectiveMassResult.from_dict(v)
                                    for k, v in _get(d, "effective_mass").items()},
                    covariance=CovarianceSummary.from_dict(cov) if cov else None,
-                   warnings=[str(w) for w in d.get("warnings") or []])
+                   warnings=[str(w) for w in d.get("warnings") or []],
+                   matrix=None if d.get("matrix") is None else str(d["matrix"]),
+                   level=None if d.get("level") is None else int(d["level"]),
+                   t0=None if d.get("t0") is None else int(d["t0"]))
 
 
 # --------------------------------------------------------------------------- ensemble
@@ -600,6 +612,7 @@ class Results:
     truth: dict[str, dict[str, float]] = field(default_factory=dict)
     warnings: list[RunWarning] = field(default_factory=list)
     provenance: dict[str, Any] = field(default_factory=dict)
+    matrices: dict[str, MatrixResult] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
         """The results.json structure (plain JSON types, NaN as None)."""
@@ -609,6 +622,7 @@ class Results:
             "ensemble": self.ensemble.to_dict(),
             "fits": {name: fit.to_dict() for name, fit in self.fits.items()},
             "derived": {name: d.to_dict() for name, d in self.derived.items()},
+            "matrices": {name: m.to_dict() for name, m in self.matrices.items()},
             "truth": {k: dict(v) for k, v in self.truth.items()},
             "warnings": [w.message for w in self.warnings],
             "warning_table": [w.to_dict() for w in self.warnings],
@@ -633,4 +647,6 @@ class Results:
                    output_dir=str(_get(d, "output").get("dir", "")),
                    ensemble=EnsembleResult.from_dict(_get(d, "ensemble")), fits=fits,
                    derived={k: DerivedQuantity.from_dict(v) for k, v in _get(d, "derived").items()},
-                   truth=truth, warnings=table, provenance=dict(_get(d, "provenance")))
+                   truth=truth, warnings=table, provenance=dict(_get(d, "provenance")),
+                   matrices={str(k): MatrixResult.from_dict(str(k), v)
+                             for k, v in _get(d, "matrices").items() if isinstance(v, Mapping)})

@@ -31,6 +31,7 @@ from plateaufit.parallel import make_executor
 from plateaufit.pipeline.derived import derive
 from plateaufit.pipeline.fits import n_scan_points, run_fit
 from plateaufit.pipeline.inputs import data_checksums, file_sha256, load_ensemble
+from plateaufit.pipeline.matrices import GevpSolutions, log_matrices, solve_all, summarise_matrices
 from plateaufit.pipeline.prepare import Prepared, ensemble_result, prepare
 from plateaufit.pipeline.results import FitResult, Results
 from plateaufit.pipeline.rules import as_spec
@@ -122,12 +123,17 @@ def run_analysis(spec: Spec, *, executor: Any = None, progress: bool = False,
     ensemble = load_ensemble(spec)
     prepared = prepare(spec, ensemble)
     _log_prepared(log, prepared)
+    solutions = GevpSolutions(spec, prepared)
+    solve_all(spec, solutions)           # a C(t0) that is not positive definite stops here
     fits: dict[str, FitResult] = {}
     for index, fit in enumerate(spec.fits):
         log.info(f"fit {fit.name}: {n_scan_points(spec, fit)} fit range(s) x state count(s), "
                  f"{prepared.n_bins} jackknife samples each")
-        fits[fit.name] = run_fit(spec, index, prepared, executor=executor, progress=progress)
+        fits[fit.name] = run_fit(spec, index, prepared, executor=executor, progress=progress,
+                                 solutions=solutions)
         _log_fit(log, fits[fit.name])
+    matrices = summarise_matrices(spec, solutions, fits)
+    log_matrices(log.info, matrices)
     derived = derive(spec, fits)
     for name, d in derived.items():
         e = d.estimate
@@ -150,7 +156,7 @@ def run_analysis(spec: Spec, *, executor: Any = None, progress: bool = False,
         version=__version__, output_dir=str(out_dir if out_dir is not None else spec.output_dir),
         ensemble=ensemble_result(prepared), fits=fits, derived=derived,
         truth={name: dict(values) for name, values in spec.truth.items()},
-        provenance=provenance)
+        provenance=provenance, matrices=matrices)
     results = with_warnings(results)
     for w in results.warnings:
         log.info(f"warning: {w.message}")

@@ -15,15 +15,25 @@ from collections.abc import Callable, Iterator
 from dataclasses import dataclass, replace
 
 from plateaufit.fit.diagnostics import FLAG_CODES
+from plateaufit.pipeline.matrix_results import LevelCheck
 from plateaufit.pipeline.results import FitResult, Results, RunWarning
 
-__all__ = ["LOW_P_VALUE", "STRONG_SHRINKAGE", "Rule", "RULES", "collect_warnings",
-           "with_warnings"]
+__all__ = ["LOW_P_VALUE", "STRONG_SHRINKAGE", "LEVEL_SEPARATION", "GRID_ASYMMETRY",
+           "METRIC_CONDITION", "Rule", "RULES", "collect_warnings", "with_warnings"]
 
 #: a chosen (or highest-weight) fit with a p-value below this is flagged
 LOW_P_VALUE = 0.05
 #: a covariance shrinkage intensity above this is flagged
 STRONG_SHRINKAGE = 0.5
+#: matrix levels closer than this many jackknife errors inside a fit range are flagged
+#: (common practice: two levels within 2 sigma are not told apart)
+LEVEL_SEPARATION = 2.0
+#: a grid entry whose C_ij - C_ji is further than this many jackknife errors from 0 is
+#: flagged (common practice: noise rarely reaches 5 sigma; a misplaced entry does)
+GRID_ASYMMETRY = 5.0
+#: a C(t0) with a condition number above this is flagged (the Cholesky reduction of the
+#: GEVP loses about log10(cond) of the 16 digits)
+METRIC_CONDITION = 1e10
 
 
 @dataclass(frozen=True)
@@ -135,6 +145,57 @@ def _chosen_flagged(results: Results) -> Iterator[RunWarning]:
                              f"fit {name}: the {which} fit ({shown.label}) is flagged: {reasons}")
 
 
+def _matrix_level_checks(results: Results) -> Iterator[tuple[str, str, LevelCheck]]:
+    for name, matrix in results.matrices.items():
+        for fit_name, check in matrix.fits.items():
+            yield name, fit_name, check
+
+
+def _matrix_crossings(results: Results) -> Iterator[RunWarning]:
+    for name, fit_name, c in _matrix_level_checks(results):
+        if c.crossing_t:
+            shown = ", ".join(str(t) for t in c.crossing_t)
+            yield RunWarning("matrix-crossings", fit_name,
+                             f"fit {fit_name}: level {c.level} of matrix {name} (t0 = {c.t0}) "
+                             f"crosses another level at t = {shown} inside its fit range "
+                             f"t = {c.tmin}..{c.tmax} ({c.crossings} crossing(s) in jackknife "
+                             "samples): its assignment is not stable there; fit a range "
+                             "without crossings or use another t0")
+
+
+def _matrix_levels_close(results: Results) -> Iterator[RunWarning]:
+    for name, fit_name, c in _matrix_level_checks(results):
+        if c.separation_min < LEVEL_SEPARATION:
+            yield RunWarning("matrix-levels-close", fit_name,
+                             f"fit {fit_name}: level {c.level} of matrix {name} is only "
+                             f"{c.separation_min:.2g} jackknife errors from a neighbouring "
+                             f"level at t = {c.separation_t}, inside its fit range t = "
+                             f"{c.tmin}..{c.tmax}: the data do not tell the two apart there")
+
+
+def _matrix_asymmetric(results: Results) -> Iterator[RunWarning]:
+    for name, matrix in results.matrices.items():
+        a = matrix.asymmetry
+        for i in range(a.shape[0]):
+            for j in range(i + 1, a.shape[1] if a.ndim == 2 else 0):
+                if a[i, j] > GRID_ASYMMETRY:
+                    yield RunWarning("matrix-asymmetric", None,
+                                     f"matrix {name}: grid entries {matrix.grid[i][j]} and "
+                                     f"{matrix.grid[j][i]} differ by {a[i, j]:.3g} jackknife "
+                                     f"errors (above {GRID_ASYMMETRY:g}): C_ij and C_ji should "
+                                     "agree; check that the grid lists them in the right place")
+
+
+def _matrix_ill_conditioned(results: Results) -> Iterator[RunWarning]:
+    for name, matrix in results.matrices.items():
+        if matrix.condition_number > METRIC_CONDITION:
+            yield RunWarning("matrix-ill-conditioned", None,
+                             f"matrix {name}: C(t0 = {matrix.t0}) has condition number "
+                             f"{matrix.condition_number:.3g} (above {METRIC_CONDITION:.0e}): "
+                             "two operators are nearly linearly dependent; drop one or choose "
+                             "a smaller t0")
+
+
 def _derived_dropped(results: Results) -> Iterator[RunWarning]:
     for name, d in results.derived.items():
         if d.n_dropped:
@@ -158,6 +219,14 @@ RULES: tuple[Rule, ...] = (
          _chosen_flagged),
     Rule("derived-samples-dropped", "derived quantities with jackknife samples left out",
          _derived_dropped),
+    Rule("matrix-crossings", "a matrix level crosses another inside its fit range",
+         _matrix_crossings),
+    Rule("matrix-levels-close", f"matrix levels within {LEVEL_SEPARATION:g} sigma inside a fit "
+         "range", _matrix_levels_close),
+    Rule("matrix-asymmetric", f"C_ij and C_ji more than {GRID_ASYMMETRY:g} sigma apart",
+         _matrix_asymmetric),
+    Rule("matrix-ill-conditioned", f"C(t0) with condition number above {METRIC_CONDITION:.0e}",
+         _matrix_ill_conditioned),
 )
 
 

@@ -32,6 +32,7 @@ from plateaufit import __version__
 from plateaufit.atomic import write_text
 from plateaufit.errors import DataError
 from plateaufit.pipeline.results import Results, as_float
+from plateaufit.report.matrix_section import render_matrices
 from plateaufit.report.plots import as_results, figure_png, make_all_plots, plot_plan
 from plateaufit.report.tables import (
     chosen_range_text,
@@ -223,7 +224,10 @@ def _section_results(results: Mapping[str, Any]) -> str:
         if math.isfinite(_num(chosen.get("p_value"))):
             meta.append(f"p = {_num(chosen.get('p_value')):.3g}")
         out.append(f"<h3>{_e(fit_name)}</h3>")
-        out.append(f'<p class="note">observables {_e(obs)}; model {_e(fit.get("model", ""))}; '
+        data_text = (f"level {_e(fit.get('level'))} of matrix {_e(fit['matrix'])} (t0 = "
+                     f"{_e(fit.get('t0'))}; see Correlator matrices)" if fit.get("matrix")
+                     else f"observables {_e(obs)}")
+        out.append(f'<p class="note">{data_text}; model {_e(fit.get("model", ""))}; '
                    + "; ".join(meta) + "</p>")
         head = ["Parameter", "value(total)", "value(stat)(sys)", "stat", "sys"]
         numeric = [False, True, True, True, True]
@@ -319,7 +323,9 @@ def _section_plots(typed: Results,
             f'<figure><img src="{uri}" alt="{_e(item.caption)}"{dims}>'
             f"<figcaption>{_e(item.caption)}{files}</figcaption></figure>")
     for section, figs in groups.items():
-        title = "Ensemble" if section == "ensemble" else f"Fit {section}"
+        title = ("Ensemble" if section == "ensemble" else
+                 f"Matrix {section[len('matrix '):]}" if section.startswith("matrix ")
+                 else f"Fit {section}")
         out.append(f"<h3>{_e(title)}</h3><div class=\"figures\">{''.join(figs)}</div>")
     out.append("</section>")
     return "".join(out)
@@ -421,13 +427,15 @@ def render_report(results: Results | Mapping[str, Any],
            f"results created {_e(prov.get('created', 'n/a'))} · page written {_e(stamp)} by "
            f"plateaufit {_e(__version__)}")
     derived = _section_derived(results)
+    matrices = render_matrices(typed)
     links = [("warnings", "Warnings"), ("data", "Data"), ("results", "Results"),
-             *([("derived", "Derived")] if derived else []), ("plots", "Plots"),
+             *([("derived", "Derived")] if derived else []),
+             *([("matrices", "Matrices")] if matrices else []), ("plots", "Plots"),
              ("scan", "Scans"), ("provenance", "Provenance")]
     nav = "".join(f'<a href="#{a}">{t}</a>' for a, t in links)
     body = "".join([
         _section_warnings(typed), _section_data(results), _section_results(results),
-        derived, _section_plots(typed, figures), _section_scans(results),
+        derived, matrices, _section_plots(typed, figures), _section_scans(results),
         _section_provenance(results),
     ])
     return (

@@ -30,6 +30,8 @@ from plateaufit.pipeline.results import Results
 from plateaufit.report.ensemble_plots import plot_autocorrelation, plot_binning
 from plateaufit.report.fit_plots import (plot_correlation, plot_effective_mass, plot_eigenvalues,
                                          plot_stability, plot_weights)
+from plateaufit.report.matrix_plots import (plot_eigenvectors, plot_overlap_map,
+                                            plot_principal_energies)
 from plateaufit.report.style import PNG_DPI, STYLE
 from plateaufit.report.tables import file_stem
 
@@ -42,6 +44,9 @@ __all__ = [
     "plot_binning",
     "plot_correlation",
     "plot_eigenvalues",
+    "plot_principal_energies",
+    "plot_eigenvectors",
+    "plot_overlap_map",
     "plot_plan",
     "as_results",
     "figure_png",
@@ -182,6 +187,22 @@ def plot_plan(results: Results | Mapping[str, Any]) -> list[PlotItem]:
                 key(fit_name, "eigenvalues"), fit_name,
                 f"{fit_name}: correlation-matrix eigenvalues before and after shrinkage",
                 lambda d=fit: plot_eigenvalues(d)))
+    for name, matrix in results.matrices.items():
+        section = f"matrix {name}"     # fit names have no spaces: no clash with a fit
+        items.append(PlotItem(
+            key(name, "principal"), section,
+            f"matrix {name}: effective energies of the principal correlators with each "
+            "level's chosen E0",
+            lambda m=matrix: plot_principal_energies(m, results.fits, results.truth)))
+        items.append(PlotItem(
+            key(name, "eigenvectors"), section,
+            f"matrix {name}: eigenvector components against t (normalised v^T C(t0) v = 1)",
+            lambda m=matrix: plot_eigenvectors(m)))
+        if matrix.overlaps is not None:
+            items.append(PlotItem(
+                key(name, "overlaps"), section,
+                f"matrix {name}: overlaps |Z_in| relative to each operator's largest",
+                lambda m=matrix: plot_overlap_map(m)))
     return items
 
 

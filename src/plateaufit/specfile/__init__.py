@@ -35,6 +35,7 @@ from plateaufit.specfile.models import (
     EnsembleSpec,
     FitSpec,
     FormulaSpec,
+    MatrixSpec,
     ObservableSpec,
     OutputSpec,
     Spec,
@@ -45,7 +46,7 @@ from plateaufit.specfile.yaml_io import read_yaml
 
 __all__ = [
     "Spec", "EnsembleSpec", "ObservableSpec", "BinningSpec", "CovarianceSpec", "FormulaSpec",
-    "ChooseSpec", "FitSpec", "OutputSpec", "ModelRules", "load_spec", "validate_spec",
+    "ChooseSpec", "FitSpec", "OutputSpec", "MatrixSpec", "ModelRules", "load_spec", "validate_spec",
     "key_path", "scan_values", "FORMS", "SHRINKAGE_METHODS", "TRUTH_DERIVED_KEY",
 ]
 

@@ -12,6 +12,7 @@ from __future__ import annotations
 import re
 
 from plateaufit.data.loaders import FORMATS, SUFFIXES
+from plateaufit.specfile.matrices import check_matrices, check_matrix_fit, check_matrix_t0
 from plateaufit.specfile.messages import SpecErrors, suggest_name
 from plateaufit.specfile.models import FitSpec, ObservableSpec, Spec
 from plateaufit.specfile.rules import ModelRules
@@ -32,6 +33,7 @@ def cross_check(spec: Spec, rules: ModelRules, err: SpecErrors) -> None:
                   "pion: {file: pion.txt}")
     for name, obs in spec.observables.items():
         _check_observable(spec, name, obs, err)
+    check_matrices(spec, err)
     names: dict[str, int] = {}
     for i, fit in enumerate(spec.fits):
         if not _FIT_NAME.match(fit.name):
@@ -124,6 +126,11 @@ def _check_observable(spec: Spec, name: str, obs: ObservableSpec, err: SpecError
 def _check_fit(spec: Spec, rules: ModelRules, i: int, fit: FitSpec, err: SpecErrors) -> None:
     key = ("fits", i)
     known = list(spec.observables)
+    if fit.matrix is not None or fit.level is not None:
+        check_matrix_fit(spec, i, fit, err)
+    elif not fit.observables:
+        raise err(key + ("observables",), "required key is missing; add observables: [NAME, "
+                  "...] (or matrix: NAME and level: n to fit a level of a correlator matrix)")
     for j, name in enumerate(fit.observables):
         if name not in spec.observables:
             raise err(key + ("observables", j), f"unknown observable {name!r}; the observables "
@@ -158,6 +165,8 @@ def _check_fit(spec: Spec, rules: ModelRules, i: int, fit: FitSpec, err: SpecErr
                               "(A_n = Z_n.source * Z_n.sink)")
 
     _check_ranges(spec, i, fit, err)
+    if fit.matrix is not None:
+        check_matrix_t0(spec, i, fit, err)
 
     names = spec.reported_names(fit)
     for group in ("priors", "bounds", "start"):
@@ -191,20 +200,22 @@ def _check_ranges(spec: Spec, i: int, fit: FitSpec, err: SpecErrors) -> None:
     if min(tmins) >= max(tmaxs):
         raise err(key + ("tmin",), f"no tmin in {tmins} is below a tmax in {tmaxs}; every fit "
                   "range needs tmin < tmax")
-    limits = {name: spec.max_fit_t(name) for name in fit.observables}
+    limits = {name: spec.max_fit_t(name) for name in fit.correlators}
     tightest = min(limits, key=limits.get)
     largest = limits[tightest]
     if max(tmaxs) > largest:
-        obs = spec.observables[tightest]
+        obs = spec.observables[spec.matrices[tightest].grid[0][0]
+                               if tightest in spec.matrices else tightest]
         how = (f"folded, t = 0..{largest}" if obs.folds else f"not folded, t = 0..{largest}")
-        raise err(key + ("tmax",), f"tmax = {max(tmaxs)} is beyond the data: observable "
+        what = "matrix" if tightest in spec.matrices else "observable"
+        raise err(key + ("tmax",), f"tmax = {max(tmaxs)} is beyond the data: {what} "
                   f"{tightest!r} has T = {spec.ensemble.time_extent}, {obs.boundary} boundary, "
                   f"{how}; the largest allowed tmax is {largest}")
 
 
 def _check_dof(spec: Spec, i: int, fit: FitSpec, err: SpecErrors) -> None:
     key = ("fits", i)
-    n_obs = len(fit.observables)
+    n_obs = len(fit.correlators)
     tmins, tmaxs, states = fit.tmin_values, fit.tmax_values, fit.states_values
     n_params = {s: spec.n_params(fit, s) for s in states}
 

@@ -17,11 +17,13 @@ from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, field_validator
 
 from plateaufit.data.loaders import format_from_suffix
 from plateaufit.data.transforms import folded_extent
+from plateaufit.specfile.matrices import MatrixSpec, fit_t0
 from plateaufit.specfile.parsers import mapping, number, pair, scan_values, time_range, whole
 from plateaufit.specfile.rules import ModelRules
 
 __all__ = ["Spec", "EnsembleSpec", "ObservableSpec", "BinningSpec", "CovarianceSpec",
-           "FormulaSpec", "ChooseSpec", "FitSpec", "OutputSpec", "SHRINKAGE_METHODS", "FORMS"]
+           "FormulaSpec", "ChooseSpec", "FitSpec", "OutputSpec", "MatrixSpec", "SHRINKAGE_METHODS",
+           "FORMS"]
 
 SHRINKAGE_METHODS: tuple[str, ...] = ("none", "ledoit-wolf", "oas")
 #: the values of a fit's ``model:`` key (the model's form)
@@ -160,10 +162,15 @@ class ChooseSpec(_Strict):
 
 
 class FitSpec(_Strict):
-    """One entry of ``fits:``."""
+    """One entry of ``fits:``.
+
+    Either ``observables:`` (the correlators fitted) or, for a level of a
+    correlator matrix, ``matrix:`` and ``level:`` (its principal correlator is
+    fitted; :attr:`correlators` names it after the matrix).
+    """
 
     name: str
-    observables: list[str] = Field(min_length=1)
+    observables: list[str] = Field(default_factory=list)
     model: Literal["exp", "cosh", "sinh", "formula"]
     states: int | list[int] = 1
     oscillating: int = Field(0, ge=0)
@@ -176,6 +183,8 @@ class FitSpec(_Strict):
     bounds: dict[str, list[float]] = Field(default_factory=dict)
     start: dict[str, float] = Field(default_factory=dict)
     choose: Literal["average"] | ChooseSpec = "average"
+    matrix: str | None = None
+    level: int | None = Field(None, ge=0)
 
     @field_validator("states", mode="plain")
     @classmethod
@@ -226,6 +235,12 @@ class FitSpec(_Strict):
     def form(self) -> str:
         """The model's form (the spec key ``model``): exp, cosh, sinh or formula."""
         return self.model
+
+    @property
+    def correlators(self) -> list[str]:
+        """Names of the data series fitted: the observables, or ``[MATRIX]`` for a level
+        of a correlator matrix (its principal correlator; parameters ``A0.MATRIX``, ...)."""
+        return [self.matrix] if self.matrix is not None else list(self.observables)
 
     @property
     def tmin_values(self) -> list[int]:
@@ -290,6 +305,7 @@ class Spec(_Strict):
     output: OutputSpec = Field(default_factory=OutputSpec)
     truth: dict[str, dict[str, float]] = Field(default_factory=dict)
     derived: dict[str, str] = Field(default_factory=dict)
+    matrices: dict[str, MatrixSpec] = Field(default_factory=dict)
 
     _path: Path | None = PrivateAttr(default=None)
     _base_dir: Path = PrivateAttr(default_factory=Path.cwd)
@@ -338,13 +354,16 @@ class Spec(_Strict):
                 for name in fit.observables}
 
     def max_fit_t(self, name: str) -> int:
-        """Largest time index of observable ``name`` after folding (T/2 folded, T-1 open)."""
+        """Largest time index of observable (or matrix) ``name`` after folding (T/2 folded,
+        T-1 open); a matrix's is that of its elements."""
+        if name in self.matrices and name not in self.observables:
+            name = self.matrices[name].grid[0][0]
         obs = self.observables[name]
         return folded_extent(self.ensemble.time_extent, obs.boundary, obs.folds) - 1
 
     def n_timeslices(self, fit: FitSpec) -> int:
         """Timeslices of all the fit's observables after folding (the AIC's full data set)."""
-        return sum(self.max_fit_t(name) + 1 for name in fit.observables)
+        return sum(self.max_fit_t(name) + 1 for name in fit.correlators)
 
     def reported_names(self, fit: FitSpec, states: int | None = None) -> list[str]:
         """Reported parameter names of ``fit`` with ``states`` states (default: the most).
@@ -358,9 +377,20 @@ class Spec(_Strict):
             raise RuntimeError("this Spec was built without ModelRules; validate it with "
                                "plateaufit.load_spec or plateaufit.pipeline.load_spec")
         n = max(fit.states_values) if states is None else states
-        return list(self._rules.reported_names(fit.observables, n, oscillating=fit.oscillating,
+        return list(self._rules.reported_names(fit.correlators, n, oscillating=fit.oscillating,
                                                constant=fit.constant,
                                                operators=self.operators(fit)))
+
+    def fit_t0(self, fit: FitSpec) -> int | None:
+        """The GEVP ``t0`` of a fit of a matrix level (None for other fits); for
+        ``t0: half``, ``ceil(max tmax / 2)`` (:func:`plateaufit.specfile.matrices.fit_t0`)."""
+        if fit.matrix is None:
+            return None
+        return fit_t0(self.matrices[fit.matrix], fit.tmax_values)
+
+    def matrix_fits(self, name: str) -> list[FitSpec]:
+        """The fits of levels of matrix ``name``, in spec order."""
+        return [fit for fit in self.fits if fit.matrix == name]
 
     def n_params(self, fit: FitSpec, states: int) -> int:
         """Number of fitted parameters of ``fit`` with ``states`` states."""
