@@ -158,10 +158,9 @@ def test_noise_is_autocorrelated_as_documented(sim, obs):
     assert tau_emcee / 2 == pytest.approx(obs.tau_int, rel=0.5)
 
 
-def test_relative_noise_grows_as_parisi_lepage_say(sim):
+def test_relative_noise_grows_as_parisi_say(sim):
     # relative noise ~ exp((E0 - E_noise/2) t): constant for the pion, growing with
-    # (E0 - 3/2 m_pi) for the nucleon (G. Parisi, Phys. Rept. 103 (1984) 203;
-    # G. P. Lepage, TASI 1989)
+    # (E0 - 3/2 m_pi) for the nucleon (G. Parisi, Phys. Rept. 103 (1984) 203)
     for obs in OBSERVABLES:
         rel = _relative_noise(sim, obs).std(axis=0)
         t = np.array([3, 9])

@@ -82,7 +82,7 @@ def test_noise_is_autocorrelated_as_documented(values):
     assert AXIAL.tau_int == pytest.approx(1.5)
 
 
-def test_relative_noise_grows_as_parisi_lepage_say(values):
+def test_relative_noise_grows_as_parisi_say(values):
     # relative noise ~ exp((E0 - m_pi) t), E_noise = 2 m_pi (G. Parisi, Phys. Rept. 103
     # (1984) 203)
     t = np.arange(TIME_EXTENT)

@@ -71,6 +71,11 @@ def test_a_ground_energy_far_below_every_effective_mass_is_collapsed():
         flags[0].message
     # from above (excited states contaminate the effective mass upwards) is fine
     assert diagnose(**_clean(values={"E0": 0.2995}, effective_masses=[meff])) == ()
+    # very precise data: a good two-state fit lies 1% below every effective mass of
+    # its range, by 30 tiny errors -- contamination, not a collapse
+    precise = (np.full(8, 0.30), np.full(8, 1e-4))
+    assert diagnose(**_clean(values={"E0": 0.297}, errors={"E0": 1e-5}, curvature_errors={"E0": 1e-5},
+                             effective_masses=[precise])) == ()
 
 
 def test_an_excited_state_compatible_with_zero_is_undetermined_not_degenerate():

@@ -47,7 +47,7 @@ Each configuration ``i`` has ``C_i(t) = C(t) (1 + r(t) eta_i(t))`` with
 zero-mean unit-variance Gaussian ``eta``, so the ensemble mean is exactly the
 truth ``C(t)``:
 
-* Signal-to-noise falls with ``t`` as Parisi and Lepage argued: the variance
+* Signal-to-noise falls with ``t`` as Parisi argued: the variance
   of a correlator is dominated by the lightest state in its square, of energy
   ``E_noise`` (``2 m_pi`` for mesons, ``3 m_pi`` for the nucleon), so the
   relative noise grows like ``r(t) = r0 exp((E0 - E_noise/2) d(t))`` with
@@ -73,9 +73,6 @@ References
 ----------
 G. Parisi, "The strategy for computing the hadronic mass spectrum", Phys. Rept.
 103 (1984) 203.
-G. P. Lepage, "The analysis of algorithms for lattice field theory", in From
-Actions to Answers, Proceedings of the 1989 Theoretical Advanced Study
-Institute, World Scientific (1990) 97.
 """
 
 from __future__ import annotations

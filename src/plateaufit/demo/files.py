@@ -96,8 +96,8 @@ def _readme(seed: int) -> str:
         "",
         "pion_ss and pion_sl share their states (operators S, L: A_n = Z_n.src * Z_n.snk).",
         "nucleon: antiperiodic, not folded; the backward parity partner enters with a",
-        "minus sign. Relative noise grows like exp((E0 - E_noise/2) t) (Parisi 1984,",
-        "Lepage 1989) with E_noise = 2 m_pi (mesons), 3 m_pi (nucleon), m_pi = "
+        "minus sign. Relative noise grows like exp((E0 - E_noise/2) t) (Parisi 1984)",
+        "with E_noise = 2 m_pi (mesons), 3 m_pi (nucleon), m_pi = "
         f"{PION_MASS:g}.",
         "",
         f"{AXIAL.file}: a {AXIAL.size} x {AXIAL.size} correlator matrix of the axial channel, "
@@ -192,8 +192,8 @@ def generate_demo_data(out_dir: str | Path, seed: int = DEMO_SEED) -> dict[str, 
 
     References
     ----------
-    G. Parisi, Phys. Rept. 103 (1984) 203; G. P. Lepage, TASI 1989 -- the
-    signal-to-noise model (see the module docstring).
+    G. Parisi, Phys. Rept. 103 (1984) 203 -- the signal-to-noise model (see the
+    module docstring).
     """
     out = Path(out_dir)
     written = {name: write_bytes(out / name, data) for name, data in demo_files(seed).items()}

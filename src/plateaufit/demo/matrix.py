@@ -11,7 +11,7 @@ Periodic in time, cosh form for every state:
     C_ij(t) = sum_n Z_in Z_jn (exp(-E_n t) + exp(-E_n (T - t))).
 
 Noise: each configuration has ``C_ij(t) (1 + r(t) eta_ij(t))`` with the
-Parisi-Lepage growth of :mod:`plateaufit.demo` (``E_noise = 2 m_pi``), and
+Parisi growth of :mod:`plateaufit.demo` (``E_noise = 2 m_pi``), and
 ``eta`` made of a part shared by all entries (one gauge configuration), a part
 shared by ``C_ij`` and ``C_ji`` (the same propagators with sources and sinks
 exchanged) and a part of each entry's own -- so the measured matrix is not

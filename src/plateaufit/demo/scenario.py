@@ -20,7 +20,7 @@ STREAMS: tuple[tuple[str, int], ...] = (("a", 600), ("b", 400))
 TRAJECTORY_STEP = 8
 STREAM_FIRST_TRAJECTORY = {"a": 1000, "b": 21000}
 
-PION_MASS = 0.20   # lattice units; sets the Parisi-Lepage noise energies
+PION_MASS = 0.20   # lattice units; sets the Parisi noise energies
 
 
 @dataclass(frozen=True)
@@ -36,7 +36,7 @@ class DemoObservable:
     energies, amplitudes : tuple of float
         Ground and excited states, ``C(t) = sum_n A_n g(E_n, t)``.
     noise_energy : float
-        ``E_noise`` of the Parisi-Lepage argument.
+        ``E_noise`` of the Parisi argument.
     noise0 : float
         Relative noise per configuration at t = 0, ``r0``.
     phi : float
@@ -87,7 +87,7 @@ class DemoObservable:
         return out
 
     def relative_noise(self, t: np.ndarray, time_extent: int) -> np.ndarray:
-        """r(t) = r0 exp((E0 - E_noise/2) min(t, T - t)) (Parisi 1984; Lepage 1989)."""
+        """r(t) = r0 exp((E0 - E_noise/2) min(t, T - t)) (Parisi 1984)."""
         t = np.asarray(t, dtype=float)
         distance = np.minimum(t, time_extent - t)
         return self.noise0 * np.exp((self.energies[0] - 0.5 * self.noise_energy) * distance)

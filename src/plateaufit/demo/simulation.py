@@ -1,6 +1,6 @@
 """The demo's noise model and :func:`simulate`: configurations from the known truth.
 
-See :mod:`plateaufit.demo` for the model (Parisi-Lepage signal-to-noise, smooth
+See :mod:`plateaufit.demo` for the model (Parisi signal-to-noise, smooth
 correlation in t, AR(1) autocorrelation in Monte Carlo time).
 
 References
@@ -84,8 +84,8 @@ def simulate(seed: int = DEMO_SEED) -> dict[str, Any]:
 
     References
     ----------
-    G. Parisi, Phys. Rept. 103 (1984) 203; G. P. Lepage, TASI 1989 (see the
-    module docstring) -- the growth of the relative noise with t.
+    G. Parisi, Phys. Rept. 103 (1984) 203 (see the module docstring) -- the
+    growth of the relative noise with t.
     """
     rng = np.random.default_rng(seed)
     T = TIME_EXTENT

@@ -21,8 +21,8 @@ Codes (thresholds are module constants):
 ``ground-collapsed`` (degenerate)
     ``E0 <= 0``, or every ground-state amplitude is compatible with zero
     (within :data:`ZERO_SIGMAS` errors), or ``E0`` lies more than
-    :data:`PLATEAU_SIGMAS` combined errors below the lowest effective mass of
-    the data in the fit range.
+    :data:`PLATEAU_SIGMAS` combined errors and :data:`PLATEAU_FRACTION` below
+    the lowest effective mass of the data in the fit range.
 ``energies-merged`` (degenerate)
     Two neighbouring energies closer than the error of their difference.
 ``refits-wide`` (degenerate)
@@ -61,14 +61,20 @@ from typing import Any
 import numpy as np
 
 __all__ = ["Flag", "diagnose", "is_degenerate", "undetermined_parameters", "FLAG_CODES",
-           "ZERO_SIGMAS", "PLATEAU_SIGMAS", "WIDTH_RATIO", "PRIOR_DOMINANCE"]
+           "ZERO_SIGMAS", "PLATEAU_SIGMAS", "PLATEAU_FRACTION", "WIDTH_RATIO", "PRIOR_DOMINANCE"]
 
 #: An amplitude within this many errors of zero is compatible with zero
 #: (common practice: a 2 sigma band).
 ZERO_SIGMAS = 2.0
 #: A ground energy this many combined errors below the lowest effective mass in
-#: the fit range has collapsed (common practice).
+#: the fit range, and at least PLATEAU_FRACTION of it below, has collapsed
+#: (common practice). The fraction keeps precise data honest: a good
+#: multi-state fit puts E0 below every effective mass of its range (they are
+#: contaminated from above), on very precise data by many tiny errors, but by
+#: the size of the contamination only, a few per cent at most; a collapsed
+#: fit lands tens of per cent below.
 PLATEAU_SIGMAS = 5.0
+PLATEAU_FRACTION = 0.1
 #: Jackknife and curvature errors of a healthy correlated fit agree within tens
 #: of per cent; a factor this large means the refits did not sample one minimum
 #: (common practice).
@@ -333,7 +339,8 @@ def _lowest_plateau(effective_masses: Sequence[tuple[np.ndarray, np.ndarray]], e
         k = int(np.argmin(pull))
         if best is None or pull[k] < best[0]:
             best = (float(pull[k]), float(value[ok][k]), float(error[ok][k]))
-    if best is not None and best[0] > PLATEAU_SIGMAS:
+    if best is not None and best[0] > PLATEAU_SIGMAS and \
+            best[1] - e0 > PLATEAU_FRACTION * abs(best[1]):
         return (f"E0 = {e0:.6g} lies {best[0]:.1f} errors below every effective mass of the "
                 f"data in the fit range (the lowest is {best[1]:.6g} +- {best[2]:.2g})")
     return None
