@@ -74,10 +74,14 @@ def run_fit(spec: Spec, index: int, prepared: Prepared, *, executor: Any = None,
     """
     fit = spec.fits[index]
     data = {name: prepared.binned[name] for name in fit.observables}
+    kwargs = fit_kwargs(spec, fit)
+    if spec.covariance.estimator == "gamma":    # one covariance from the unbinned data
+        from plateaufit.pipeline.gamma import gamma_fit_covariance
+
+        kwargs["covariance_matrix"] = gamma_fit_covariance(spec, fit, prepared)
     with located(fit_index=index):
         fits = scan(data, tmin=fit.tmin, tmax=fit.tmax, states=fit.states_values,
-                    executor=executor, progress=progress, label=fit.name,
-                    **fit_kwargs(spec, fit))
+                    executor=executor, progress=progress, label=fit.name, **kwargs)
         point = fit.chosen_point()
         return summarise_scan(fits, name=fit.name, choose=point, binned=data,
                               time_extent=spec.ensemble.time_extent)
