@@ -93,7 +93,8 @@ def run_replica(job: ReplicaJob, item: tuple[int, np.random.SeedSequence]) -> Re
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")   # the base run showed the data's warnings
-            results = run_analysis(job.spec, ensemble=ensemble, log=RunLog())
+            results = run_analysis(job.spec, ensemble=ensemble, log=RunLog(),
+                                   effective_masses=False)
     except PlateaufitError as err:
         return ReplicaOutcome(index=index, failure=str(err),
                               seconds=time.perf_counter() - start)

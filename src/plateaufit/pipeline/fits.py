@@ -59,8 +59,11 @@ def n_scan_points(spec: Spec, fit: FitSpec) -> int:
 
 
 def run_fit(spec: Spec, index: int, prepared: Prepared, *, executor: Any = None,
-            progress: bool = False) -> FitResult:
+            progress: bool = False, effective_masses: bool = True) -> FitResult:
     """Scan fit ``fits[index]`` of ``spec`` on the prepared data; choose or average.
+
+    ``effective_masses=False`` leaves the (display-only) effective masses out of
+    the result; ``plateaufit calibrate``'s replicas need none.
 
     Returns
     -------
@@ -83,5 +86,6 @@ def run_fit(spec: Spec, index: int, prepared: Prepared, *, executor: Any = None,
         fits = scan(data, tmin=fit.tmin, tmax=fit.tmax, states=fit.states_values,
                     executor=executor, progress=progress, label=fit.name, **kwargs)
         point = fit.chosen_point()
-        return summarise_scan(fits, name=fit.name, choose=point, binned=data,
+        return summarise_scan(fits, name=fit.name, choose=point,
+                              binned=data if effective_masses else None,
                               time_extent=spec.ensemble.time_extent)

@@ -98,7 +98,8 @@ def _log_fit(log: RunLog, fit: FitResult) -> None:
 
 def run_analysis(spec: Spec, *, executor: Any = None, progress: bool = False,
                  log: RunLog | None = None, out_dir: str | os.PathLike[str] | None = None,
-                 spec_path: Path | None = None, ensemble: Ensemble | None = None) -> Results:
+                 spec_path: Path | None = None, ensemble: Ensemble | None = None,
+                 effective_masses: bool = True) -> Results:
     """Everything ``plateaufit fit`` computes, as typed results; writes nothing.
 
     Parameters
@@ -117,6 +118,8 @@ def run_analysis(spec: Spec, *, executor: Any = None, progress: bool = False,
         Analyse these aligned, folded data instead of loading the spec's files
         (``plateaufit calibrate`` runs its replicas so, never touching the
         disk); the provenance then has no data checksums.
+    effective_masses : bool
+        The fits' (display-only) effective masses; the replicas skip them.
 
     Returns
     -------
@@ -132,7 +135,8 @@ def run_analysis(spec: Spec, *, executor: Any = None, progress: bool = False,
     for index, fit in enumerate(spec.fits):
         log.info(f"fit {fit.name}: {n_scan_points(spec, fit)} fit range(s) x state count(s), "
                  f"{prepared.n_bins} jackknife samples each")
-        fits[fit.name] = run_fit(spec, index, prepared, executor=executor, progress=progress)
+        fits[fit.name] = run_fit(spec, index, prepared, executor=executor, progress=progress,
+                                 effective_masses=effective_masses)
         _log_fit(log, fits[fit.name])
     derived = derive(spec, fits)
     for name, d in derived.items():
