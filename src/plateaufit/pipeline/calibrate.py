@@ -15,9 +15,10 @@
    replica (:mod:`~plateaufit.pipeline.calibration_replicas`).
 5. Coverage, bias, pulls, scatter and the p-values are summarised
    (:mod:`~plateaufit.pipeline.calibration_summary`); when a coverage falls
-   outside its binomial band, the same replicas are rerun with the changes that
-   test the likely causes (larger bins, per-sample covariance, no shrinkage,
-   the Gamma-method covariance) and the warning says which restores it.
+   below its binomial band (errors too small), the same replicas (the first
+   :data:`VARIANT_REPLICAS` of them) are rerun with the changes that test the
+   likely causes (larger bins, per-sample covariance, no shrinkage, the
+   Gamma-method covariance) and the warning says which restores it.
 6. ``DIR/calibration.json`` is written last, after the fit's own outputs
    (results.json, tables, plots, and the report page with its calibration
    section).
@@ -58,6 +59,9 @@ __all__ = ["calibrate_spec", "calibrate", "DEFAULT_REPLICAS", "coverage_table", 
            "build_truth", "write_calibration"]
 
 DEFAULT_REPLICAS = 200
+#: the remedies rerun at most this many of the replicas (the first ones: the same
+#: draws), each variant costing another round of analyses
+VARIANT_REPLICAS = 100
 
 
 def _check_count(replicas: Any) -> int:
@@ -165,7 +169,7 @@ def calibrate(spec: Spec, replicas: int = DEFAULT_REPLICAS, *, seed: int | None 
         messages.append("tau_int of the data is only a lower bound (chain too short for its "
                         "window): the replicas have at most the measured autocorrelation, so "
                         "the coverage measured here may be optimistic")
-    failing = failing_items(fits, derived)
+    failing = failing_items(fits, derived, low_only=True)
     variant_results: list[VariantResult] = []
     t2 = time.perf_counter()
     if failing and variants:
@@ -175,7 +179,7 @@ def calibrate(spec: Spec, replicas: int = DEFAULT_REPLICAS, *, seed: int | None 
         for remedy in tried:
             log.info(f"calibrate: rerunning the same replicas with {remedy.description}")
             vjob = ReplicaJob.of(remedy.spec, model, ensemble, job.layout)
-            vout = _run_replicas(executor, vjob, seeds, progress, remedy.name)
+            vout = _run_replicas(executor, vjob, seeds[:VARIANT_REPLICAS], progress, remedy.name)
             vfits, vderived = summarise(remedy.spec, base, cal_truth, vout, keep_pulls=False)
             variant_results.append(VariantResult(
                 name=remedy.name, description=remedy.description, changes=remedy.changes,

@@ -81,11 +81,18 @@ def summarise(spec: Spec, base: Results, truth: CalibrationTruth,
     return fits, derived
 
 
-def failing_items(fits: dict[str, FitCalibration], derived: dict[str, ParameterCalibration]
-                  ) -> list[tuple[str, str]]:
-    """(fit or 'derived', parameter) of every coverage outside its band."""
-    out = [(name, p) for name, fc in fits.items() for p, pc in fc.params.items() if pc.outside]
-    out += [("derived", name) for name, pc in derived.items() if pc.outside]
+def _below(pc: ParameterCalibration) -> bool:
+    return pc.n > 0 and (pc.coverage_1sigma < pc.band_1sigma[0]
+                         or pc.coverage_2sigma < pc.band_2sigma[0])
+
+
+def failing_items(fits: dict[str, FitCalibration], derived: dict[str, ParameterCalibration],
+                  *, low_only: bool = False) -> list[tuple[str, str]]:
+    """(fit or 'derived', parameter) of every coverage outside its band (``low_only``:
+    below it, the errors too small: what the remedies address)."""
+    bad = _below if low_only else (lambda pc: pc.outside)
+    out = [(name, p) for name, fc in fits.items() for p, pc in fc.params.items() if bad(pc)]
+    out += [("derived", name) for name, pc in derived.items() if bad(pc)]
     return out
 
 
@@ -101,9 +108,11 @@ def _pct(x: float) -> str:
     return "n/a" if not math.isfinite(x) else f"{100 * x:.0f}%"
 
 
-def _label(key: tuple[str, str], fits) -> str:
+def _label(key: tuple[str, str], fits, short: bool = False) -> str:
     group, name = key
-    return f"derived {name}" if group == "derived" and group not in fits else f"fit {group}: {name}"
+    if group == "derived" and group not in fits:
+        return f"derived {name}"
+    return f"{group} {name}" if short else f"fit {group}: {name}"
 
 
 def coverage_warnings(fits: dict[str, FitCalibration], derived: dict[str, ParameterCalibration],
@@ -215,6 +224,7 @@ def remedy_sentence(base_fits, base_derived, variants: list[VariantResult],
     if not failing:
         return ""
     parts = []
+    n = 0
     for v in variants:
         cells = []
         for key in failing[:3]:
@@ -222,13 +232,17 @@ def remedy_sentence(base_fits, base_derived, variants: list[VariantResult],
             base = _item(base_fits, base_derived, key)
             if pc is None:
                 continue
-            cells.append(f"{key[1]} {_pct(base.coverage_1sigma)} -> {_pct(pc.coverage_1sigma)}")
+            n = max(n, pc.n)
+            cells.append(f"{_label(key, base_fits, short=True)} {_pct(base.coverage_1sigma)} -> "
+                         f"{_pct(pc.coverage_1sigma)}")
+        more = f" (and {len(failing) - 3} more)" if len(failing) > 3 else ""
         verdict = "restores coverage" if v.restores else "does not restore it"
         failed = f", {v.n_failed} replica(s) failed" if v.n_failed else ""
-        parts.append(f"{v.description}: {', '.join(cells)} at 1 sigma ({verdict}{failed})")
+        parts.append(f"{v.description}: {', '.join(cells)}{more} at 1 sigma ({verdict}{failed})")
     good = [v.description for v in variants if v.restores]
-    lead = (f"the same replicas with {' / '.join(good)} restore coverage"
-            if good else "none of the variants tried restores coverage")
+    which = f"the first {n} replicas" if n else "the same replicas"
+    lead = (f"rerunning {which} with {' / '.join(good)} restores coverage"
+            if good else f"none of the variants tried on {which} restores coverage")
     text = f"{lead} -- " + "; ".join(parts)
     if skipped:
         text += " (not tried: " + "; ".join(skipped) + ")"

@@ -9,13 +9,15 @@ uses, ``min tmin .. max tmax``); that prediction is the replicas' mean there.
 Timeslices no fit covers keep the data mean. Every scan point of every
 replica then fits data whose mean the truth model gives exactly.
 
-An observable in several fits: the first fit of the spec (in order) sets the
-timeslices of its band, a later fit only those still unset. A fit that did not
-set all of its own band gets as its truth the *pseudo-true* parameters: its
-truth point's model fitted, without noise, to the truth vector over its range,
-weighted with the replicas' exact covariance of the mean (the value an
-unbiased fit of that model would scatter around). When every timeslice is its
-own, that fit returns the parameters unchanged.
+An observable in several fits: the first fit of the spec (in order) that uses
+it sets its truth, over the union of the bands of every fit that uses it (one
+model per observable, so the truth is never a patchwork of two fits). A later
+fit that does not own all of its observables gets as its truth the
+*pseudo-true* parameters: its truth point's model fitted, without noise, to the
+truth vector over its range, weighted with the replicas' exact covariance of
+the mean (the value an unbiased fit of that model scatters around); when its
+form can describe the first fit's prediction (the same form, or a factorised
+version of it), that fit recovers it exactly.
 
 Reported parameters the truth model lacks (``E1`` of an average whose
 highest-weight point has one state) have no truth: their coverage is not
@@ -94,13 +96,14 @@ def column_layout(ensemble: Ensemble) -> dict[str, slice]:
     return out
 
 
-def _model(spec: Spec, index: int, states: int, lo: int, hi: int):
+def _model(spec: Spec, index: int, states: int, ranges: Mapping[str, tuple[int, int]]):
+    """The fit's model with ``states`` states on ``ranges`` (observable -> (lo, hi))."""
     fit = spec.fits[index]
     kw = fit_kwargs(spec, fit)
-    t = np.arange(lo, hi + 1)
-    return make_model(fit.form, states, fit.observables, {n: t for n in fit.observables},
-                      spec.ensemble.time_extent, oscillating=kw["oscillating"],
-                      constant=kw["constant"], operators=kw["operators"], formula=kw["formula"])
+    t = {n: np.arange(ranges[n][0], ranges[n][1] + 1) for n in fit.observables}
+    return make_model(fit.form, states, fit.observables, t, spec.ensemble.time_extent,
+                      oscillating=kw["oscillating"], constant=kw["constant"],
+                      operators=kw["operators"], formula=kw["formula"])
 
 
 def _band(spec: Spec, index: int, ensemble: Ensemble) -> tuple[int, int]:
@@ -123,6 +126,10 @@ def truth_vector(spec: Spec, results: Results, ensemble: Ensemble,
                  ) -> tuple[np.ndarray, dict[str, FitTruth]]:
     """The replicas' mean over the concatenated folded timeslices, and each fit's truth.
 
+    Each observable's truth comes from the first fit of the spec that uses it,
+    evaluated over the union of the bands of every fit that uses it (see the
+    module notes).
+
     Raises
     ------
     SpecError
@@ -130,13 +137,19 @@ def truth_vector(spec: Spec, results: Results, ensemble: Ensemble,
     """
     layout = column_layout(ensemble)
     vector = np.concatenate([v.mean(axis=0) for v in ensemble.correlators.values()])
-    owned = np.zeros(vector.size, dtype=bool)
+    owner: dict[str, int] = {}
+    union: dict[str, tuple[int, int]] = {}
+    for index, fit in enumerate(spec.fits):
+        lo, hi = _band(spec, index, ensemble)
+        for obs in fit.observables:
+            owner.setdefault(obs, index)
+            a, b = union.get(obs, (lo, hi))
+            union[obs] = (min(a, lo), max(b, hi))
     fits: dict[str, FitTruth] = {}
     for index, fit in enumerate(spec.fits):
         (tmin, tmax, states), params = _point_params(results, fit.name)
         given = dict((file_truth or {}).get(fit.name) or {})
-        lo, hi = _band(spec, index, ensemble)
-        model = _model(spec, index, states, lo, hi)
+        model = _model(spec, index, states, union)
         names = list(model.reported_names)
         unknown = [p for p in given if p not in names]
         if unknown:
@@ -150,16 +163,14 @@ def truth_vector(spec: Spec, results: Results, ensemble: Ensemble,
         if not np.all(np.isfinite(prediction)):
             raise SpecError(TRUTH_OPTION if given else "fits", f"fit {fit.name}: the truth "
                             "model's prediction is not finite; check its parameters")
-        own = True
         for obs, sl in model.point_slices().items():
-            cols = np.arange(layout[obs].start + lo, layout[obs].start + hi + 1)
-            free = ~owned[cols]
-            own = own and bool(free.all())
-            vector[cols[free]] = prediction[sl][free]
-            owned[cols] = True
+            if owner[obs] == index:
+                lo, hi = union[obs]
+                vector[layout[obs].start + lo:layout[obs].start + hi + 1] = prediction[sl]
         fits[fit.name] = FitTruth(tmin=tmin, tmax=tmax, states=states,
                                   params={n: float(params[n]) for n in names},
-                                  band=(lo, hi), own_band=own)
+                                  band=_band(spec, index, ensemble),
+                                  own_band=all(owner[o] == index for o in fit.observables))
     return vector, fits
 
 
@@ -172,7 +183,8 @@ def pseudo_true(spec: Spec, ensemble: Ensemble, vector: np.ndarray, fits: dict[s
         truth = fits[fit.name]
         if truth.own_band:
             continue
-        model = _model(spec, index, truth.states, truth.tmin, truth.tmax)
+        model = _model(spec, index, truth.states,
+                       {o: (truth.tmin, truth.tmax) for o in fit.observables})
         cols = np.concatenate([np.arange(layout[o].start + truth.tmin,
                                          layout[o].start + truth.tmax + 1)
                                for o in fit.observables])
