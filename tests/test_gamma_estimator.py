@@ -90,3 +90,48 @@ def test_the_run_uses_the_gamma_covariance(tmp_path):
                                                          abs=3 * fb.chosen.params["E0"].error)
     assert 0.5 < fg.chosen.params["E0"].error / fb.chosen.params["E0"].error < 2.0
     assert fg.covariance.n_points == 10
+
+
+def test_estimator_key_reaches_the_fit(tmp_path, monkeypatch):
+    """covariance.estimator: gamma, through run_spec, equals the core called by hand."""
+    import importlib
+
+    from test_runner_end_to_end import (STREAMS, T, folded_binned, invented_spec,
+                                        write_invented_data)
+    from test_runner_end_to_end import write_spec as write_run_spec
+
+    from plateaufit.data.transforms import fold
+    from plateaufit.pipeline.run import run_spec
+    from plateaufit.stats.gamma_covariance import gamma_covariance
+
+    scan_module = importlib.import_module("plateaufit.fit.scan")
+    calls = []
+    real = scan_module.prepare_range
+
+    def recording(binned, **kwargs):
+        calls.append(kwargs.get("covariance_matrix"))
+        return real(binned, **kwargs)
+
+    monkeypatch.setattr(scan_module, "prepare_range", recording)
+    write_invented_data(tmp_path)
+    spec = invented_spec()
+    spec["fits"] = [f for f in spec["fits"] if f["name"] == "eta"]
+    spec["covariance"]["estimator"] = "gamma"
+    results = run_spec(write_run_spec(tmp_path, spec), tmp_path / "out", plots=False, jobs=1,
+                       progress=False)
+    assert calls and all(c is not None for c in calls)
+    # by hand: the Gamma-method covariance of the folded unbinned data over the fit's span
+    fit_spec = spec["fits"][0]
+    raw = fold(np.load(tmp_path / "eta.npy"), "periodic")
+    lo, hi = fit_spec["tmin"], fit_spec["tmax"]
+    est = gamma_covariance(raw[:, lo:hi + 1], np.repeat(np.arange(len(STREAMS)), STREAMS))
+    full = np.full((raw.shape[1],) * 2, np.nan)
+    full[lo:hi + 1, lo:hi + 1] = est.matrix
+    binned = folded_binned(tmp_path, "eta", results["ensemble"]["bin_size"])
+    fit = fit_correlator({"eta": binned}, form="cosh", states=1, tmin=lo, tmax=hi,
+                         time_extent=T, covariance_matrix=full)
+    chosen = results["fits"]["eta"]["chosen"]["params"]
+    for name in fit.model.reported_names:
+        assert chosen[name]["value"] == pytest.approx(fit.central.reported[name], rel=1e-10)
+        assert chosen[name]["error"] == pytest.approx(fit.errors[name], rel=1e-8)
+    assert results["fits"]["eta"]["covariance"]["shrinkage"] == pytest.approx(est.shrinkage)
