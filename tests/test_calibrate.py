@@ -192,3 +192,36 @@ def test_calibrate_spec_refuses_a_bad_count_before_fitting(tmp_path):
     spec = write_spec(tmp_path, single_state(2, 300, tau=1.0), tmin=6, tmax=11)
     with pytest.raises(SpecError):
         calibrate_spec(spec, 1.5)
+
+
+@pytest.mark.slow   # a process pool
+def test_replicas_on_a_process_pool_give_the_serial_numbers(tmp_path):
+    from plateaufit.parallel import make_executor
+
+    spec = load_spec(write_spec(tmp_path, single_state(4, 500, tau=1.0), tmin=6, tmax=11))
+    _, serial = calibrate(spec, 6, seed=9, variants=False)
+    with make_executor(jobs=2) as executor:
+        _, pooled = calibrate(spec, 6, seed=9, executor=executor, variants=False)
+    np.testing.assert_array_equal(pooled.fits["meson"].params["E0"].pulls,
+                                  serial.fits["meson"].params["E0"].pulls)
+    np.testing.assert_array_equal(pooled.fits["meson"].p_values, serial.fits["meson"].p_values)
+
+
+def test_p_value_warnings_know_that_an_average_picks_small_chi2():
+    from plateaufit.pipeline.calibration_summary import coverage_warnings
+    from plateaufit.stats.coverage import p_value_uniformity
+
+    rng = np.random.default_rng(1)
+    high = np.sqrt(rng.random(200))           # leaning high: chi2 too small
+    low = rng.random(200) ** 2                # leaning low: chi2 too large
+
+    def fit(p):
+        d, ks = p_value_uniformity(p)
+        return FitCalibration(params={"E0": _pc(0.68, 0.95, 200)}, p_values=p,
+                              ks_statistic=d, ks_p_value=ks)
+    said = coverage_warnings({"a": fit(high), "b": fit(high), "c": fit(low)}, {}, 200,
+                             averaged=["a", "c"])
+    assert not any(w.startswith("fit a:") for w in said)       # selection, not a defect
+    assert any(w.startswith("fit b:") and "overestimated" in w for w in said)
+    assert any(w.startswith("fit c:") and "underestimated" in w for w in said)
+    assert len(said) == 2

@@ -160,7 +160,8 @@ def calibrate(spec: Spec, replicas: int = DEFAULT_REPLICAS, *, seed: int | None 
     t_rep = time.perf_counter() - t1
     fits, derived = summarise(spec, base, cal_truth, outcomes)
     n_failed = sum(o.failed for o in outcomes)
-    messages = coverage_warnings(fits, derived, replicas - n_failed)
+    averaged = [f.name for f in spec.fits if f.is_scan and f.averages]
+    messages = coverage_warnings(fits, derived, replicas - n_failed, averaged)
     if n_failed:
         first = next(o.failure for o in outcomes if o.failed)
         messages.append(f"{n_failed} of {replicas} replicas failed (left out of the coverage); "
@@ -189,8 +190,8 @@ def calibrate(spec: Spec, replicas: int = DEFAULT_REPLICAS, *, seed: int | None 
         if sentence:
             messages.append(sentence[0].upper() + sentence[1:])
     t_var = time.perf_counter() - t2
-    for message in messages:
-        log.info(f"calibration warning: {message}")
+    for message in messages:     # run.log; the terminal gets them from print_summary
+        log.detail(f"calibration warning: {message}")
     unmeasured = {name: dict(fc.unmeasured) for name, fc in fits.items() if fc.unmeasured}
     for name, reason in cal_truth.derived_unmeasured.items():
         log.info(f"calibrate: derived {name}: coverage not measured ({reason})")
