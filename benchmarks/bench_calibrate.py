@@ -39,7 +39,8 @@ def workload_calibrate(jobs: int = 2) -> dict:
     return {"seconds": seconds, "jobs": jobs, "n_configs": N_CONFIGS, "n_replicas": N_REPLICAS,
             "timing": cal["timing"], "coverage_1sigma": e0["coverage_1sigma"],
             "coverage_1sigma_error": e0["coverage_1sigma_error"],
-            "coverage_2sigma": e0["coverage_2sigma"], "scatter_over_error": e0["scatter_over_error"],
+            "coverage_2sigma": e0["coverage_2sigma"],
+            "scatter_over_error": e0["scatter_over_error"],
             "ks_p_value": cal["fits"]["meson"]["p_values"]["ks_p_value"],
             "n_failed": cal["n_failed"]}
 

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import json
-import math
 
 import numpy as np
 import pytest
@@ -14,9 +13,9 @@ from plateaufit.cli import main
 from plateaufit.errors import SpecError
 from plateaufit.pipeline.calibrate import build_truth, calibrate, calibrate_spec
 from plateaufit.pipeline.calibration_replicas import ReplicaJob, replica_ensemble, run_replica
-from plateaufit.pipeline.calibration_results import CalibrationResults, ParameterCalibration
+from plateaufit.pipeline.calibration_results import (CalibrationResults, FitCalibration,
+                                                     ParameterCalibration, VariantResult)
 from plateaufit.pipeline.calibration_summary import remedies, remedy_sentence, restores
-from plateaufit.pipeline.calibration_results import FitCalibration, VariantResult
 from plateaufit.pipeline.calibration_truth import column_layout, read_truth_file
 from plateaufit.pipeline.inputs import load_ensemble
 from plateaufit.pipeline.rules import load_spec
@@ -138,12 +137,13 @@ def test_remedies_and_what_the_warning_says(tmp_path):
     assert spec.binning.size == 1 and spec.covariance.estimator == "binned"   # unchanged
     # at the largest size that leaves 20 bins, no larger bins; too few bins: no 'none'
     tried, skipped = remedies(spec, 50, 23, [1000])
-    assert "larger-bins" not in [r.name for r in tried] and "no-shrinkage" in [r.name for r in tried]
+    names = [r.name for r in tried]
+    assert "larger-bins" not in names and "no-shrinkage" in names
     tried, skipped = remedies(spec, 40, 23, [240])
     assert "no-shrinkage" not in [r.name for r in tried]
     assert any("singular" in s for s in skipped)
     base = {"meson": FitCalibration(params={"E0": _pc(0.30, 0.55)})}
-    fixed = VariantResult("larger-bins", "binning.size 1 -> 23", {}, 
+    fixed = VariantResult("larger-bins", "binning.size 1 -> 23", {},
                           {"meson": FitCalibration(params={"E0": _pc(0.66, 0.95)})})
     other = VariantResult("per-sample", "covariance.per_sample true", {},
                           {"meson": FitCalibration(params={"E0": _pc(0.31, 0.56)})})

@@ -158,7 +158,8 @@ def range_block(full: Any, data: Mapping[str, np.ndarray], tmin: int, tmax: int,
     return covmod.CovarianceResult(
         matrix=block, raw_matrix=raw_block, shrinkage=float(getattr(full, "shrinkage", 0.0)),
         target=str(getattr(full, "target", target)),
-        condition_number=covmod._condition(block), condition_number_raw=covmod._condition(raw_block),
+        condition_number=covmod._condition(block),
+        condition_number_raw=covmod._condition(raw_block),
         eigenvalues=eig, eigenvalues_raw=eig_raw, n_samples=int(n_bins))
 
 

@@ -207,7 +207,8 @@ def calibrate(spec: Spec, replicas: int = DEFAULT_REPLICAS, *, seed: int | None 
         noise_model={"method": model.method, "window": model.window,
                      "shrinkage": model.shrinkage, "n_factors": model.n_factors,
                      "n_clipped": model.n_clipped, "reliable": model.reliable,
-                     "tau_max": float(np.max(model.taus)), "stream_sizes": list(model.stream_sizes)},
+                     "tau_max": float(np.max(model.taus)),
+                     "stream_sizes": list(model.stream_sizes)},
         truth={**cal_truth.to_dict(), "unmeasured": unmeasured,
                "derived_unmeasured": dict(cal_truth.derived_unmeasured)},
         variants=variant_results, warnings=messages, failures=_failures(outcomes)[:20],
@@ -226,7 +227,8 @@ def coverage_table(calibration: CalibrationResults) -> str:
         flag = "  <- outside band" if pc.outside else ""
         return (f"{label[:28]:28s} {pc.coverage_1sigma:6.2f}({100 * pc.coverage_1sigma_error:2.0f})"
                 f"   {pc.coverage_2sigma:6.2f}({100 * pc.coverage_2sigma_error:2.0f})"
-                f"   {pc.bias_over_error:+7.2f} {pc.pull_rms:8.2f} {pc.scatter_over_error:8.2f}{flag}")
+                f"   {pc.bias_over_error:+7.2f} {pc.pull_rms:8.2f} "
+                f"{pc.scatter_over_error:8.2f}{flag}")
     for name, fc in calibration.fits.items():
         for p, pc in fc.params.items():
             rows.append(line(f"{name}: {p}", pc))

@@ -202,7 +202,8 @@ def pseudo_true(spec: Spec, ensemble: Ensemble, vector: np.ndarray, fits: dict[s
 
 
 def derived_truth(spec: Spec, fits: dict[str, FitTruth],
-                  given: Mapping[str, float] | None = None) -> tuple[dict[str, float], dict[str, str]]:
+                  given: Mapping[str, float] | None = None
+                  ) -> tuple[dict[str, float], dict[str, str]]:
     """The derived quantities' truth (``given`` wins), and why some have none."""
     values: dict[str, float] = {}
     missing: dict[str, str] = {}
