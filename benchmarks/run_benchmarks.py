@@ -7,6 +7,8 @@ The workloads live in their own modules:
   C (precise data, an excited state invisible at large tmin, no prior vs a
   prior), each end to end with the lmfit loop measured beside it;
 * ``bench_gevp.py`` -- the variational method on a 4 x 4 matrix;
+* ``bench_calibrate.py`` -- ``plateaufit calibrate``: 200 replicas of a single-fit
+  spec with 8000 configurations (target under 2 minutes with --jobs 2);
 * ``bench_replicas.py`` -- synthetic replicas and the Gamma-method covariance
   (run on its own: ``.venv/bin/python benchmarks/bench_replicas.py``).
 
@@ -19,7 +21,7 @@ printed at the start and the end of each run; figures move by +-30% with it.
 
 Options: ``--quick`` (smaller lmfit subset), ``--skip-b``, ``--no-variants``
 (only the run as given), ``--profile`` (cProfile of workload A's scan, top
-entries printed), ``--only {a,b,c,gevp}`` (one workload).
+entries printed), ``--only {a,b,c,gevp,calibrate}`` (one workload).
 """
 
 from __future__ import annotations
@@ -34,6 +36,8 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 
+from bench_calibrate import TARGETS as CAL_TARGETS  # noqa: E402
+from bench_calibrate import print_calibrate, workload_calibrate  # noqa: E402
 from bench_gevp import TARGETS as GEVP_TARGETS  # noqa: E402
 from bench_gevp import print_gevp, workload_gevp  # noqa: E402
 from bench_scans import TARGETS as SCAN_TARGETS  # noqa: E402
@@ -41,7 +45,7 @@ from bench_scans import print_scans, workload_a, workload_b, workload_c  # noqa:
 from common import environment, load_average  # noqa: E402
 
 OUTPUT = HERE / "output" / "latest.json"
-TARGETS = {**SCAN_TARGETS, **GEVP_TARGETS}
+TARGETS = {**SCAN_TARGETS, **GEVP_TARGETS, **CAL_TARGETS}
 
 
 def print_report(res: dict) -> None:
@@ -55,6 +59,7 @@ def print_report(res: dict) -> None:
     print(line)
     print_scans(res, line)
     print_gevp(res, line)
+    print_calibrate(res, line)
     print("(stage times overlap: 'refits: total' contains 'refits: batched engine'; the "
           "central fits contain their starting points.)")
 
@@ -70,6 +75,8 @@ def run_all(args) -> dict:
         res["C"] = workload_c(2 if args.quick else 4)
     if only in (None, "gevp"):
         res["GEVP"] = workload_gevp()
+    if only in (None, "calibrate"):
+        res["CAL"] = workload_calibrate()
     # the machine may be shared: the load at the end tells whether it changed
     res["environment"]["load_average_end"] = load_average()
     return res
@@ -108,7 +115,7 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--profile", action="store_true", help="cProfile workload A's scan")
     parser.add_argument("--no-variants", action="store_true",
                         help="do not repeat the run with other OpenBLAS settings")
-    parser.add_argument("--only", choices=("a", "b", "c", "gevp"), default=None,
+    parser.add_argument("--only", choices=("a", "b", "c", "gevp", "calibrate"), default=None,
                         help="run one workload only")
     parser.add_argument("--label", default="environment as given")
     parser.add_argument("--child", action="store_true", help=argparse.SUPPRESS)

@@ -1,4 +1,4 @@
-"""Command-line entry point: ``plateaufit check|fit|demo|report``.
+"""Command-line entry point: ``plateaufit check|fit|calibrate|demo|report``.
 
 The command line only parses arguments and dispatches; every piece of work
 lives in the modules it calls. User errors (:class:`~plateaufit.errors.PlateaufitError`)
@@ -45,6 +45,26 @@ def _build_parser() -> argparse.ArgumentParser:
     p_demo.add_argument("--jobs", type=int, default=None, help="worker processes for scan points")
     p_demo.add_argument("--quiet", action="store_true", help="no progress bars")
 
+    p_cal = sub.add_parser("calibrate", help="measure the coverage of the spec's own errors "
+                           "on synthetic replicas of its ensemble")
+    p_cal.add_argument("spec", help="path to the YAML specification file")
+    p_cal.add_argument("--replicas", type=int, default=200,
+                       help="number of synthetic replicas (default 200)")
+    p_cal.add_argument("--out", help="output directory (default: the spec's output.dir)")
+    p_cal.add_argument("--seed", type=int, default=None,
+                       help="seed of the replicas (default: fresh, written to calibration.json)")
+    p_cal.add_argument("--truth", default=None,
+                       help="YAML file of the shape of the spec's truth: key (default: the "
+                       "fitted result is the replicas' truth)")
+    p_cal.add_argument("--jobs", type=int, default=None,
+                       help="worker processes for the replicas (default: all cores)")
+    p_cal.add_argument("--scheduler", default=None,
+                       help="address of a dask.distributed scheduler to run replicas on")
+    p_cal.add_argument("--no-variants", action="store_true",
+                       help="do not rerun the replicas with remedies when coverage fails")
+    p_cal.add_argument("--no-plots", action="store_true", help="skip plots and the report page")
+    p_cal.add_argument("--quiet", action="store_true", help="no progress bars")
+
     p_report = sub.add_parser("report", help="rebuild plots and the report page from results.json")
     p_report.add_argument("dir", help="an output directory holding results.json")
     return parser
@@ -62,6 +82,15 @@ def _dispatch(args: argparse.Namespace) -> int:
         results = run_spec(args.spec, args.out, plots=not args.no_plots, jobs=args.jobs,
                            scheduler=args.scheduler, progress=not args.quiet, echo=True)
         print(f"results written to {results['output']['dir']}")
+        return 0
+    if args.command == "calibrate":
+        from plateaufit.pipeline.calibrate import calibrate_spec, print_summary
+
+        calibration = calibrate_spec(args.spec, args.replicas, args.out, seed=args.seed,
+                                     jobs=args.jobs, scheduler=args.scheduler, truth=args.truth,
+                                     variants=not args.no_variants, plots=not args.no_plots,
+                                     progress=not args.quiet, echo=True)
+        print_summary(calibration)
         return 0
     if args.command == "demo":
         from plateaufit.demo import run_demo

@@ -265,7 +265,8 @@ def fit_correlator(binned, *, form: str, states: int, tmin: int, tmax: int,
                    engine: str = "auto", n_total_points: int | None = None,
                    eigenvalue_floor: float | None = None,
                    tol: float = DEFAULT_TOL,
-                   central: Mapping[str, np.ndarray] | np.ndarray | None = None
+                   central: Mapping[str, np.ndarray] | np.ndarray | None = None,
+                   covariance_matrix: Any = None
                    ) -> CorrelatorFit:
     """Correlated fit of one fit range, with jackknife refits for the errors.
 
@@ -306,6 +307,11 @@ def fit_correlator(binned, *, form: str, states: int, tmin: int, tmax: int,
         (:func:`plateaufit.stats.resample.pseudo_values`), the fit of an
         estimate known only through its jackknife samples (a principal
         correlator of the GEVP); the refits then run on exactly those samples.
+    covariance_matrix : ndarray or covariance result, optional
+        A covariance of the mean over all timeslices of the fit's observables
+        (e.g. :func:`plateaufit.stats.gamma_covariance.gamma_covariance` of the
+        unbinned data) used instead of the bins' covariance; the range takes
+        its block, and every refit uses it (see :func:`prepare_range`).
 
     Returns
     -------
@@ -337,7 +343,7 @@ def fit_correlator(binned, *, form: str, states: int, tmin: int, tmax: int,
                                 operators=operators, formula=formula, start=start,
                                 engine=engine, n_total_points=n_total_points,
                                 eigenvalue_floor=eigenvalue_floor, tol=tol,
-                                central=central)
+                                central=central, covariance_matrix=covariance_matrix)
         fit = refit_range(problem, central_of_range(problem))
     return with_warnings(fit, caught)
 

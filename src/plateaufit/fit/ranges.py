@@ -25,7 +25,7 @@ from plateaufit.fit.whitening import cholesky_factor
 from plateaufit.stats import covariance as covmod
 from plateaufit.stats.effmass import effective_mass_jackknife
 
-__all__ = ["RangeProblem", "prepare_range", "as_observables"]
+__all__ = ["RangeProblem", "prepare_range", "range_block", "as_observables"]
 
 
 @dataclass
@@ -104,6 +104,65 @@ def as_observables(binned) -> dict[str, np.ndarray]:
     return data
 
 
+def range_block(full: Any, data: Mapping[str, np.ndarray], tmin: int, tmax: int,
+                n_bins: int, target: str = "diagonal") -> covmod.CovarianceResult:
+    """The block of a covariance over all timeslices that one fit range uses.
+
+    Parameters
+    ----------
+    full : ndarray (P, P) or a covariance result with ``.matrix``
+        Over every timeslice of every observable of ``data``, concatenated in
+        its order (``P = sum n_t``).
+    data : mapping
+        Observable -> binned data ``(n_bins, n_t)`` (for the layout only).
+    tmin, tmax : int
+        The range, both included.
+    n_bins : int
+        Recorded as the covariance's ``n_samples`` (the refits' samples).
+    target : str
+        Recorded when ``full`` does not say.
+
+    Returns
+    -------
+    CovarianceResult
+        The block (and the raw block when ``full`` has one), with the shrinkage
+        ``full`` reports (0 for a plain array).
+
+    Raises
+    ------
+    FitError
+        ``where="covariance_matrix"``: wrong shape, or a non-finite entry in
+        the block.
+    """
+    matrix = np.asarray(getattr(full, "matrix", full), dtype=float)
+    raw = getattr(full, "raw_matrix", None)
+    raw = matrix if raw is None else np.asarray(raw, dtype=float)
+    sizes = [int(arr.shape[1]) for arr in data.values()]
+    total = sum(sizes)
+    if matrix.shape != (total, total) or raw.shape != matrix.shape:
+        raise FitError("covariance_matrix", f"the covariance matrix has shape {matrix.shape} "
+                       f"but the fit's observables have {total} timeslices in all ({sizes}); "
+                       "give one row and column per timeslice of every observable")
+    offsets = np.cumsum([0] + sizes[:-1])
+    index = np.concatenate([o + np.arange(tmin, tmax + 1) for o in offsets])
+    block = matrix[np.ix_(index, index)]
+    raw_block = raw[np.ix_(index, index)]
+    if not (np.all(np.isfinite(block)) and np.all(np.isfinite(raw_block))):
+        raise FitError("covariance_matrix", f"the covariance matrix has non-finite entries "
+                       f"in the range {tmin}..{tmax}; estimate it over every timeslice fitted")
+    block = 0.5 * (block + block.T)
+    raw_block = 0.5 * (raw_block + raw_block.T)
+    with np.errstate(all="ignore"):
+        eig = np.linalg.eigvalsh(covmod._correlation(block))[::-1]
+        eig_raw = np.linalg.eigvalsh(covmod._correlation(raw_block))[::-1]
+    return covmod.CovarianceResult(
+        matrix=block, raw_matrix=raw_block, shrinkage=float(getattr(full, "shrinkage", 0.0)),
+        target=str(getattr(full, "target", target)),
+        condition_number=covmod._condition(block),
+        condition_number_raw=covmod._condition(raw_block),
+        eigenvalues=eig, eigenvalues_raw=eig_raw, n_samples=int(n_bins))
+
+
 def prepare_range(binned, *, form: str, states: int, tmin: int, tmax: int,
                   time_extent: int, priors: Mapping[str, Any] | None = None,
                   bounds: Mapping[str, Any] | None = None,
@@ -115,7 +174,8 @@ def prepare_range(binned, *, form: str, states: int, tmin: int, tmax: int,
                   eigenvalue_floor: float | None = None,
                   tol: float = DEFAULT_TOL,
                   effective_masses: Mapping[str, Any] | None = None,
-                  central: Mapping[str, np.ndarray] | np.ndarray | None = None
+                  central: Mapping[str, np.ndarray] | np.ndarray | None = None,
+                  covariance_matrix: Any = None
                   ) -> RangeProblem:
     """Set up one fit range (arguments as for :func:`fit_correlator`).
 
@@ -166,7 +226,14 @@ def prepare_range(binned, *, form: str, states: int, tmin: int, tmax: int,
     cov_kw: dict[str, Any] = {"shrinkage": shrinkage, "target": target}
     if eigenvalue_floor is not None:
         cov_kw["eigenvalue_floor"] = eigenvalue_floor
-    cov_result = covmod.covariance_of_mean(x, **cov_kw)
+    if covariance_matrix is None:
+        cov_result = covmod.covariance_of_mean(x, **cov_kw)
+    else:
+        if per_sample:
+            raise FitError("per_sample", "per-sample covariances come from the bins; with a "
+                           "given covariance_matrix every refit uses its block, so set "
+                           "per_sample to False")
+        cov_result = range_block(covariance_matrix, data, tmin, tmax, n_bins, target)
     chol = cholesky_factor(cov_result.matrix, n_bins)
     effective = ()
     kind = EFFECTIVE_MASS_KIND.get(form)

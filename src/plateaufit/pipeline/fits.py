@@ -59,11 +59,14 @@ def n_scan_points(spec: Spec, fit: FitSpec) -> int:
 
 
 def run_fit(spec: Spec, index: int, prepared: Prepared, *, executor: Any = None,
-            progress: bool = False, solutions: Any = None) -> FitResult:
+            progress: bool = False, solutions: Any = None,
+            effective_masses: bool = True) -> FitResult:
     """Scan fit ``fits[index]`` of ``spec`` on the prepared data; choose or average.
 
     A fit of a matrix level goes to :func:`plateaufit.pipeline.matrices.run_level_fit`
     (``solutions``: its shared :class:`~plateaufit.pipeline.matrices.GevpSolutions`).
+    ``effective_masses=False`` leaves the (display-only) effective masses out of
+    the result; ``plateaufit calibrate``'s replicas need none.
 
     Returns
     -------
@@ -82,10 +85,15 @@ def run_fit(spec: Spec, index: int, prepared: Prepared, *, executor: Any = None,
         return run_level_fit(spec, index, prepared, solutions=solutions, executor=executor,
                              progress=progress)
     data = {name: prepared.binned[name] for name in fit.observables}
+    kwargs = fit_kwargs(spec, fit)
+    if spec.covariance.estimator == "gamma":    # one covariance from the unbinned data
+        from plateaufit.pipeline.gamma import gamma_fit_covariance
+
+        kwargs["covariance_matrix"] = gamma_fit_covariance(spec, fit, prepared)
     with located(fit_index=index):
         fits = scan(data, tmin=fit.tmin, tmax=fit.tmax, states=fit.states_values,
-                    executor=executor, progress=progress, label=fit.name,
-                    **fit_kwargs(spec, fit))
+                    executor=executor, progress=progress, label=fit.name, **kwargs)
         point = fit.chosen_point()
-        return summarise_scan(fits, name=fit.name, choose=point, binned=data,
+        return summarise_scan(fits, name=fit.name, choose=point,
+                              binned=data if effective_masses else None,
                               time_extent=spec.ensemble.time_extent)

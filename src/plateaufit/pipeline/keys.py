@@ -30,6 +30,7 @@ GLOBAL_KEYS: dict[str, str] = {
     "target": "covariance.target",
     "eigenvalue_floor": "covariance.eigenvalue_floor",
     "per_sample": "covariance.per_sample",
+    "covariance_matrix": "covariance.estimator",
 }
 
 #: first part of a fit-core argument path -> key of the fit entry (``fits[i].KEY``)

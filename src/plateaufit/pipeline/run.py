@@ -26,6 +26,7 @@ import numpy as np
 
 from plateaufit import __version__
 from plateaufit.atomic import write_text
+from plateaufit.data.ensemble import Ensemble
 from plateaufit.errors import DataError
 from plateaufit.parallel import make_executor
 from plateaufit.pipeline.derived import derive
@@ -98,7 +99,8 @@ def _log_fit(log: RunLog, fit: FitResult) -> None:
 
 def run_analysis(spec: Spec, *, executor: Any = None, progress: bool = False,
                  log: RunLog | None = None, out_dir: str | os.PathLike[str] | None = None,
-                 spec_path: Path | None = None) -> Results:
+                 spec_path: Path | None = None, ensemble: Ensemble | None = None,
+                 effective_masses: bool = True) -> Results:
     """Everything ``plateaufit fit`` computes, as typed results; writes nothing.
 
     Parameters
@@ -113,6 +115,12 @@ def run_analysis(spec: Spec, *, executor: Any = None, progress: bool = False,
         Receives the log lines.
     out_dir, spec_path : optional
         Recorded in the results (``output.dir``, provenance).
+    ensemble : Ensemble, optional
+        Analyse these aligned, folded data instead of loading the spec's files
+        (``plateaufit calibrate`` runs its replicas so, never touching the
+        disk); the provenance then has no data checksums.
+    effective_masses : bool
+        The fits' (display-only) effective masses; the replicas skip them.
 
     Returns
     -------
@@ -120,7 +128,8 @@ def run_analysis(spec: Spec, *, executor: Any = None, progress: bool = False,
         With the warnings table filled in.
     """
     log = log if log is not None else RunLog()
-    ensemble = load_ensemble(spec)
+    in_memory = ensemble is not None
+    ensemble = ensemble if in_memory else load_ensemble(spec)
     prepared = prepare(spec, ensemble)
     _log_prepared(log, prepared)
     solutions = GevpSolutions(spec, prepared)
@@ -130,7 +139,7 @@ def run_analysis(spec: Spec, *, executor: Any = None, progress: bool = False,
         log.info(f"fit {fit.name}: {n_scan_points(spec, fit)} fit range(s) x state count(s), "
                  f"{prepared.n_bins} jackknife samples each")
         fits[fit.name] = run_fit(spec, index, prepared, executor=executor, progress=progress,
-                                 solutions=solutions)
+                                 solutions=solutions, effective_masses=effective_masses)
         _log_fit(log, fits[fit.name])
     matrices = summarise_matrices(spec, solutions, fits)
     log_matrices(log.info, matrices)
@@ -142,7 +151,7 @@ def run_analysis(spec: Spec, *, executor: Any = None, progress: bool = False,
     provenance: dict[str, Any] = {
         "version": __version__,
         "spec": str(spec_path if spec_path is not None else spec.path or ""),
-        "data_sha256": data_checksums(spec),
+        "data_sha256": {} if in_memory else data_checksums(spec),
         "seeds": {},
         "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         "python": platform.python_version(),

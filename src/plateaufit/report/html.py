@@ -413,7 +413,8 @@ def _section_provenance(results: Mapping[str, Any]) -> str:
 # --------------------------------------------------------------------- the page
 
 def render_report(results: Results | Mapping[str, Any],
-                  figures: Mapping[str, Sequence[Path]] | None = None) -> str:
+                  figures: Mapping[str, Sequence[Path]] | None = None,
+                  calibration: Any = None) -> str:
     """The report page as HTML text (see :func:`write_report`)."""
     typed = results if isinstance(results, Results) else None
     results = typed.to_dict() if typed is not None else results
@@ -428,14 +429,20 @@ def render_report(results: Results | Mapping[str, Any],
            f"plateaufit {_e(__version__)}")
     derived = _section_derived(results)
     matrices = render_matrices(typed)
+    calibrated = ""
+    if calibration is not None:      # plateaufit calibrate: its section after the results
+        from plateaufit.report.calibration_section import render_calibration_section
+
+        calibrated = render_calibration_section(calibration, figures)
     links = [("warnings", "Warnings"), ("data", "Data"), ("results", "Results"),
              *([("derived", "Derived")] if derived else []),
-             *([("matrices", "Matrices")] if matrices else []), ("plots", "Plots"),
+             *([("matrices", "Matrices")] if matrices else []),
+             *([("calibration", "Calibration")] if calibrated else []), ("plots", "Plots"),
              ("scan", "Scans"), ("provenance", "Provenance")]
     nav = "".join(f'<a href="#{a}">{t}</a>' for a, t in links)
     body = "".join([
         _section_warnings(typed), _section_data(results), _section_results(results),
-        derived, matrices, _section_plots(typed, figures), _section_scans(results),
+        derived, matrices, calibrated, _section_plots(typed, figures), _section_scans(results),
         _section_provenance(results),
     ])
     return (
@@ -449,7 +456,8 @@ def render_report(results: Results | Mapping[str, Any],
 
 
 def write_report(results: Results | Mapping[str, Any], out_dir: str | os.PathLike[str], *,
-                 figures: Mapping[str, Sequence[Path]] | None = None) -> Path:
+                 figures: Mapping[str, Sequence[Path]] | None = None,
+                 calibration: Any = None) -> Path:
     """Write the self-contained report page ``OUT_DIR/report.html``.
 
     Parameters
@@ -463,6 +471,9 @@ def write_report(results: Results | Mapping[str, Any], out_dir: str | os.PathLik
         then embeds those PNG files instead of drawing every plot again. An
         empty mapping gives a page without plots. By default the plots are
         drawn afresh (in memory) from ``results``.
+    calibration : CalibrationResults, optional
+        ``plateaufit calibrate``'s results: the page gets a calibration section
+        (:mod:`plateaufit.report.calibration_section`).
 
     Returns
     -------
@@ -474,12 +485,14 @@ def write_report(results: Results | Mapping[str, Any], out_dir: str | os.PathLik
     DataError
         If ``results`` lacks a key the page needs (the message names it).
     """
-    page = render_report(results, figures)
+    page = render_report(results, figures, calibration)
     return write_text(Path(out_dir) / "report.html", page)
 
 
 def rebuild_report(out_dir: str | os.PathLike[str]) -> Path:
     """Remake tables, plots and the page of a finished run from its results.json.
+
+    A calibration.json beside it (``plateaufit calibrate``) adds the calibration section.
 
     Reads ``OUT_DIR/results.json`` and writes the scan CSV files and
     results.tex, the plots in ``OUT_DIR/plots/`` and ``OUT_DIR/report.html``,
@@ -517,5 +530,24 @@ def rebuild_report(out_dir: str | os.PathLike[str]) -> Path:
                                    "`plateaufit fit SPEC` to write it again") from None
     check_results(results, str(path))
     write_tables(results, out)
-    figures = make_all_plots(results, out)
-    return write_report(results, out, figures=figures)
+    figures = dict(make_all_plots(results, out))
+    calibration = _read_calibration(out)
+    if calibration is not None:
+        from plateaufit.report.calibration_plots import make_calibration_plots
+
+        figures.update(make_calibration_plots(calibration, out))
+    return write_report(results, out, figures=figures, calibration=calibration)
+
+
+def _read_calibration(out: Path) -> Any:
+    """``OUT/calibration.json`` (written by ``plateaufit calibrate``) typed, or None."""
+    path = out / "calibration.json"
+    if not path.is_file():
+        return None
+    from plateaufit.pipeline.calibration_results import CalibrationResults
+
+    try:
+        return CalibrationResults.from_dict(json.loads(path.read_text(encoding="utf-8")))
+    except (UnicodeDecodeError, json.JSONDecodeError, TypeError, ValueError, AttributeError):
+        raise DataError(str(path), "is not a calibration file plateaufit wrote; rerun "
+                        "`plateaufit calibrate SPEC` or remove it") from None

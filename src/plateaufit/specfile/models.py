@@ -13,7 +13,8 @@ import os
 from pathlib import Path
 from typing import Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, field_validator
+from pydantic import (BaseModel, ConfigDict, Field, PrivateAttr, ValidationInfo,
+                      field_validator)
 
 from plateaufit.data.loaders import format_from_suffix
 from plateaufit.data.transforms import folded_extent
@@ -105,12 +106,27 @@ class BinningSpec(_Strict):
 
 
 class CovarianceSpec(_Strict):
-    """``covariance:`` -- shrinkage, its target, per-sample covariance, eigenvalue floor."""
+    """``covariance:`` -- estimator, shrinkage, its target, per-sample covariance, eigenvalue floor.
 
+    ``estimator: binned`` (default) takes the covariance of the mean from the bins;
+    ``gamma`` from the windowed autocorrelation matrix of the unbinned data (Wolff 2004),
+    for the central fit and, frozen, for every refit (so not with ``per_sample``).
+    """
+
+    estimator: Literal["binned", "gamma"] = "binned"
     shrinkage: str | float = "ledoit-wolf"
     target: Literal["diagonal", "identity"] = "diagonal"
     per_sample: bool = False
     eigenvalue_floor: float | None = None
+
+    @field_validator("per_sample", mode="after")
+    @classmethod
+    def _per_sample(cls, value: bool, info: ValidationInfo) -> bool:
+        if value and info.data.get("estimator") == "gamma":
+            raise ValueError("per_sample: true takes each refit's covariance from the bins, "
+                             "but estimator: gamma estimates one covariance from the unbinned "
+                             "data; set per_sample: false or estimator: binned")
+        return value
 
     @field_validator("shrinkage", mode="plain")
     @classmethod
