@@ -101,8 +101,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     except PlateaufitError as err:
         print(f"plateaufit: error: {err}", file=sys.stderr)
         return 2
-    except KeyboardInterrupt:
-        print("plateaufit: interrupted; no results were written", file=sys.stderr)
+    except KeyboardInterrupt as exc:
+        from plateaufit.run_folder import interruption_message
+
+        print(f"plateaufit: interrupted; {interruption_message(exc)}", file=sys.stderr)
         return 130
 
 
