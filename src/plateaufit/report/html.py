@@ -32,7 +32,7 @@ from plateaufit import __version__
 from plateaufit.atomic import write_text
 from plateaufit.errors import DataError
 from plateaufit.pipeline.results import Results, as_float
-from plateaufit.report.plots import as_results, figure_png, make_all_plots, plot_plan
+from plateaufit.report.plots import as_results, figure_png, plot_plan
 from plateaufit.report.tables import (
     chosen_range_text,
     format_value_error,
@@ -475,7 +475,10 @@ def rebuild_report(out_dir: str | os.PathLike[str]) -> Path:
 
     Reads ``OUT_DIR/results.json`` and writes the scan CSV files and
     results.tex, the plots in ``OUT_DIR/plots/`` and ``OUT_DIR/report.html``,
-    without refitting.
+    without refitting. The files are written into a staging folder and moved
+    into place together (:mod:`plateaufit.run_folder`); results.json and run.log
+    are left as they are, plots of the earlier page that are not drawn again
+    are removed.
 
     Parameters
     ----------
@@ -490,24 +493,28 @@ def rebuild_report(out_dir: str | os.PathLike[str]) -> Path:
     Raises
     ------
     DataError
-        Naming results.json when it is missing, is not JSON, or lacks a
-        required key (the message says which).
+        Naming results.json when it is missing, not a regular file, not JSON,
+        or has a key missing or unusable (the message names the key path), or
+        naming the file that could not be written.
     """
+    from plateaufit.report.plots import save_figure
+    from plateaufit.report.reading import CONVERSION_ERRORS, damaged, read_results, trail_of
+    from plateaufit.run_folder import RunFolder
+
     out = Path(out_dir)
+    results, typed = read_results(out)
     path = out / "results.json"
-    if not path.is_file():
-        raise DataError(str(path), "no results.json here; give the output directory of a "
-                                   "finished `plateaufit fit` run, or run the fit first")
-    try:
-        results = json.loads(path.read_text(encoding="utf-8"))
-    except UnicodeDecodeError:
-        raise DataError(str(path), "is not UTF-8 text, so not a results file; rerun "
-                                   "`plateaufit fit SPEC` to write it again") from None
-    except json.JSONDecodeError as err:
-        raise DataError(str(path), f"is not valid JSON ({err.msg} at line {err.lineno}, "
-                                   f"column {err.colno}); the file is damaged: rerun "
-                                   "`plateaufit fit SPEC` to write it again") from None
-    check_results(results, str(path))
-    write_tables(results, out)
-    figures = make_all_plots(results, out)
-    return write_report(results, out, figures=figures)
+    folder = RunFolder(out, key=str(out), inputs=[path])
+    with folder.writing(completion=None, keep=("results.json", "run.log")) as staging:
+        with damaged(path, trail_of(results)):
+            write_tables(results, staging)
+            figures: dict[str, list[Path]] = {}
+            for item in plot_plan(typed):
+                try:
+                    figures[item.key] = save_figure(item.draw(), staging / "plots" / item.key)
+                except CONVERSION_ERRORS as exc:   # a value the plot cannot use: damaged
+                    raise DataError(str(path), f"cannot draw the plot {item.key} ({item.caption})"
+                                    f" from it: {type(exc).__name__}: {exc}; the file is damaged "
+                                    "or from another layout: rerun `plateaufit fit SPEC`") from None
+            write_report(results, staging, figures=figures)
+    return out / "report.html"
