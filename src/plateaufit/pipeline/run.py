@@ -35,7 +35,8 @@ from plateaufit.pipeline.derived import derive
 from plateaufit.pipeline.fits import n_scan_points, run_fit
 from plateaufit.pipeline.inputs import data_checksums, file_sha256, load_ensemble
 from plateaufit.pipeline.output import output_folder, output_names, write_outputs
-from plateaufit.pipeline.prepare import Prepared, ensemble_result, prepare
+from plateaufit.pipeline.prepare import (Prepared, ensemble_result, prepare, tau_estimable,
+                                         tau_text)
 from plateaufit.pipeline.results import FitResult, Results
 from plateaufit.pipeline.rules import as_spec
 from plateaufit.pipeline.warnings import excluded_reasons, with_warnings
@@ -65,10 +66,14 @@ class RunLog:
 def _log_prepared(log: RunLog, prepared: Prepared) -> None:
     for name in prepared.ensemble.correlators:
         t, r = prepared.largest_tau(name)
-        log.info(f"{name}: tau_int (1/2 + sum rho convention) = {r.tau:.2f} "
-                 f"+- {r.error:.2f} at t = {t}, window {r.window}")
+        if tau_estimable(r):
+            log.info(f"{name}: tau_int (1/2 + sum rho convention) = {tau_text(r)} at t = {t}, "
+                     f"window {r.window}")
+        else:
+            log.info(f"{name}: tau_int (1/2 + sum rho convention) not estimable at any "
+                     "timeslice (too few configurations)")
     if prepared.automatic:
-        largest = max(float(np.nanmax([r.tau for r in res])) for res in prepared.taus.values())
+        largest = max(prepared.largest_tau(name)[1].tau for name in prepared.taus)
         log.info(f"bin size {prepared.bin_size} chosen automatically from the largest tau_int "
                  f"({largest:.2f})")
     if prepared.n_dropped:

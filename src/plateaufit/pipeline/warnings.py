@@ -41,7 +41,12 @@ def _fits(results: Results) -> Iterator[tuple[str, FitResult]]:
 
 def _tau_unreliable(results: Results) -> Iterator[RunWarning]:
     for name, tau in results.ensemble.tau_int.items():
-        if not tau.reliable:
+        if not (math.isfinite(tau.value) and tau.value >= 0):
+            yield RunWarning("tau-unreliable", None,
+                             f"{name}: tau_int is not estimable at any timeslice (too few "
+                             "configurations); the errors are not corrected for "
+                             "autocorrelation")
+        elif not tau.reliable:
             yield RunWarning("tau-unreliable", None,
                           f"{name}: no autocorrelation window was found at every timeslice; "
                           f"tau_int = {tau.value:.3g} is a lower bound there (the chains are "
