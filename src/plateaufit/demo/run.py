@@ -26,6 +26,9 @@ def _pull_rows(results: dict[str, Any]) -> list[tuple[str, str, str, str, str]]:
             if name not in params:
                 rows.append((fit_name, name, "(not fitted)", f"{true_value:g}", ""))
                 continue
+            if params[name]["value"] is None or params[name]["error"] is None:
+                rows.append((fit_name, name, "(not a result)", f"{true_value:g}", ""))
+                continue
             value = float(params[name]["value"])
             error = float(params[name]["error"])
             pull = (value - true_value) / error if error > 0 else float("nan")
@@ -34,7 +37,8 @@ def _pull_rows(results: dict[str, Any]) -> list[tuple[str, str, str, str, str]]:
     derived = results.get("derived") or {}
     derived_truth = truth.get("derived") if "derived" not in results["fits"] else None
     for name, true_value in (derived_truth or {}).items():
-        if name not in derived:
+        if name not in derived or derived[name]["value"] is None \
+                or derived[name]["error"] is None:
             rows.append(("derived", name, "(not computed)", f"{true_value:g}", ""))
             continue
         value = float(derived[name]["value"])

@@ -85,8 +85,12 @@ def _log_prepared(log: RunLog, prepared: Prepared) -> None:
 def _log_fit(log: RunLog, fit: FitResult) -> None:
     params = fit.chosen.params
     first = "E0" if "E0" in params else next(iter(params))   # a formula has its own names
-    log.info(f"fit {fit.name}: {first} = {params[first].value:.6g} +- "
-             f"{params[first].error:.2g} ({fit.chosen.method})")
+    if first in fit.chosen.withheld:
+        log.info(f"fit {fit.name}: no result: the chosen fit is not a fit (its values are "
+                 "withheld; see the warning)")
+    else:
+        log.info(f"fit {fit.name}: {first} = {params[first].value:.6g} +- "
+                 f"{params[first].error:.2g} ({fit.chosen.method})")
     if fit.chosen.n_excluded:
         shown = ", ".join(f"{code} {n}" for code, n in sorted(excluded_reasons(fit).items()))
         log.info(f"fit {fit.name}: {fit.chosen.n_excluded} of {len(fit.scan)} scan points given "
@@ -141,6 +145,10 @@ def run_analysis(spec: Spec, *, executor: Any = None, progress: bool = False,
     derived = derive(spec, fits)
     for name, d in derived.items():
         e = d.estimate
+        if d.withheld_inputs:
+            log.info(f"derived {name} = {d.expression}: not computed ("
+                     f"{', '.join(d.withheld_inputs)} withheld)")
+            continue
         log.info(f"derived {name} = {d.expression}: {e.value:.6g} +- {e.error:.2g} "
                  f"(stat {e.stat_error:.2g}, sys {e.sys_error:.2g})")
     provenance: dict[str, Any] = {

@@ -240,7 +240,10 @@ def _section_results(results: Mapping[str, Any]) -> str:
             both = ("n/a" if math.isnan(v) else
                     format_value_errors(v, [abs(stat) if math.isfinite(stat) else stat,
                                             abs(sys_) if math.isfinite(sys_) else sys_]))
-            cells = [_e(pname), _e(_ve(v, tot)), _e(both), _e(_fmt(stat, ".2g")),
+            total = _ve(v, tot)
+            if pname in (chosen.get("withheld") or ()):   # see the Warnings section
+                both = total = "not a result"
+            cells = [_e(pname), _e(total), _e(both), _e(_fmt(stat, ".2g")),
                      _e(_fmt(sys_, ".2g"))]
             if has_truth:
                 cells += _truth_cells(v, tot, truth.get(pname))

@@ -426,8 +426,11 @@ def latex_results_table(results: Mapping[str, Any]) -> str:
             stat = _num(entry.get("stat_error", entry.get("error")))
             sys_ = _num(entry.get("sys_error", 0.0))
             total = _num(entry.get("error"))
-            both = _latex_number(_safe_format(value, [stat, sys_]))
-            tot = _latex_number(_safe_format(value, [total]))
+            if pname in (chosen.get("withheld") or ()) or not math.isfinite(value):
+                both = tot = "not a result" if pname in (chosen.get("withheld") or ()) else "---"
+            else:
+                both = _latex_number(_safe_format(value, [stat, sys_]))
+                tot = _latex_number(_safe_format(value, [total]))
             cells = [latex_escape(fit_name) if i == 0 else "", latex_escape(pname), both, tot,
                      method if i == 0 else "", range_text if i == 0 else ""]
             lines.append(" & ".join(cells) + " \\\\")
@@ -439,9 +442,10 @@ def latex_results_table(results: Mapping[str, Any]) -> str:
         stat = _num(entry.get("stat_error", entry.get("error")))
         sys_ = _num(entry.get("sys_error", 0.0))
         total = _num(entry.get("error"))
-        cells = ["derived" if i == 0 else "", latex_escape(name),
-                 _latex_number(_safe_format(value, [stat, sys_])),
-                 _latex_number(_safe_format(value, [total])), "jackknife",
+        shown = ([_latex_number(_safe_format(value, [stat, sys_])),
+                  _latex_number(_safe_format(value, [total]))] if math.isfinite(value)
+                 else ["---", "---"])
+        cells = ["derived" if i == 0 else "", latex_escape(name), *shown, "jackknife",
                  f"\\texttt{{{latex_escape(entry.get('expression', ''))}}}"]
         lines.append(" & ".join(cells) + " \\\\")
     lines += ["\\bottomrule", "\\end{tabular}"]
