@@ -273,7 +273,8 @@ class RunFolder:
 
     def preflight(self, names: Iterable[str], *, plots: bool = True,
                   probe_bytes: int = PROBE_BYTES) -> None:
-        """Before any fitting: outputs clear of inputs, folder creatable, writable, with room.
+        """Before any fitting: outputs clear of inputs, folder creatable, writable, with room,
+        and no other run writing into it at the moment.
 
         A probe file of ``probe_bytes`` is written (and synced) in the folder or,
         when it does not exist yet, in its deepest existing parent, then removed.
@@ -294,6 +295,10 @@ class RunFolder:
             raise self._error(f"{base}: this folder is not writable, so the results cannot be "
                               "written there; choose another output folder")
         self._probe(base, probe_bytes)
+        if self.path.is_dir():   # another run writing here now: say so before fitting
+            lock = self._lock()
+            if lock is not None:
+                os.close(lock)
 
     def _probe(self, base: Path, n_bytes: int) -> None:
         fd, probe = -1, None

@@ -152,6 +152,20 @@ def _find(fits: Sequence[Any], choose: tuple[int, int, int | None]) -> Any:
                    + (f", states = {states}" if states is not None else ""))
 
 
+def _why_unusable(fits: Sequence[Any]) -> str:
+    """``3 of 3 points: at-bound 2, not converged 1`` -- why points got weight 0."""
+    counts: dict[str, int] = {}
+    for fit in fits:
+        codes = {str(c).split(":")[0] for c in getattr(fit, "flag_codes", ())}
+        degenerate = {str(getattr(f, "code", "")) for f in getattr(fit, "flags", ())
+                      if getattr(f, "effect", "") == "degenerate"}
+        shown = (codes & degenerate) or ({"not converged"} if not fit.converged else set())
+        for code in shown or {"no usable parameter"}:
+            counts[code] = counts.get(code, 0) + 1
+    listed = ", ".join(f"{code} {n}" for code, n in sorted(counts.items()))
+    return f"{len(fits)} point(s): {listed}"
+
+
 def summarise_scan(fits: Sequence[Any] | Any, *, name: str = "fit",
                    choose: tuple[int, int] | tuple[int, int, int | None] | None = None,
                    binned: Mapping[str, np.ndarray] | np.ndarray | None = None,
@@ -231,8 +245,10 @@ def summarise_scan(fits: Sequence[Any] | Any, *, name: str = "fit",
                                                  avg.sys_error[n])
                     inputs[n] = DerivedInput(avg.value[n], avg.samples[n], avg.sys_error[n])
         if not params:
-            raise FitError("", "no fit of the scan converged; narrow the ranges, add priors "
-                               "on the excited states, or give start values")
+            raise FitError("", f"no point of the scan is a usable fit ({_why_unusable(fits)}),"
+                               " so there is no result; narrow the ranges, add priors on the "
+                               "excited states, give start values near the answer, or widen "
+                               "or drop bounds the fits ended on")
         weights = np.asarray(avg.weights, dtype=float)
         shown = fits[int(np.argmax(weights))]
         contributing = [f for f, w in zip(fits, weights) if w > 0]
