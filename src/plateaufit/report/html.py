@@ -38,6 +38,7 @@ from plateaufit.report.tables import (
     format_value_error,
     format_value_errors,
     param_names,
+    scan_table_names,
     write_tables,
 )
 from plateaufit.report.validate import check_results
@@ -508,6 +509,9 @@ def rebuild_report(out_dir: str | os.PathLike[str]) -> Path:
     results, typed = read_results(out)
     path = out / "results.json"
     folder = RunFolder(out, key=str(out), inputs=[path])
+    # before drawing anything: nothing in the way of the files it writes
+    folder.check_outputs([*scan_table_names(results.get("fits") or {}), "results.tex",
+                          "report.html"], plots=True)
     with folder.writing(completion=None, keep=("results.json", "run.log")) as staging:
         with damaged(path, trail_of(results)):
             write_tables(results, staging)
