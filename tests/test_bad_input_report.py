@@ -22,7 +22,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from bad_input import error_line, fit_args, one_fit_spec, run_cli, snapshot, write_run
+from bad_input import error_line, one_fit_spec, run_cli, snapshot, write_run
 from plateaufit.errors import DataError
 from plateaufit.report.html import render_report
 from plateaufit.report.reading import damaged, read_results, trail_of
