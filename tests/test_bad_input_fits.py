@@ -126,3 +126,14 @@ def test_a_formula_fit_whose_model_vanishes_is_not_a_result(tmp_path, capsys):
     chosen = results["fits"]["eta"]["chosen"]
     m = chosen["params"]["m"]["value"]
     assert chosen["withheld"] or abs(m - 0.65) < 0.01, m
+
+
+@pytest.mark.slow   # draws every plot of the run
+def test_the_report_of_a_withheld_fit_draws_and_says_not_a_result(tmp_path, capsys):
+    spec = one_fit_spec(bounds={"E0": [0.7, 1.0]})
+    spec["output"]["plots"] = True
+    status, err, results, out = _fit(tmp_path, spec, capsys)
+    assert status == 0, err
+    page = (out / "report.html").read_text(encoding="utf-8")
+    assert "not a result" in page and "chosen-withheld" not in page   # the words, not codes
+    assert (out / "plots" / "eta.effmass.eta.png").is_file()
