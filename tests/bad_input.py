@@ -9,7 +9,9 @@ the invented ensemble ``heron-a24`` of ``tests/test_runner_end_to_end.py``
 
 from __future__ import annotations
 
+import contextlib
 import re
+import signal
 from pathlib import Path
 from typing import Any
 
@@ -74,3 +76,18 @@ def error_line(stderr: str, *patterns: str) -> str:
 def no_fitting_happened(stderr: str) -> bool:
     """Whether the run stopped before fitting (no fit's log line was echoed)."""
     return not re.search(r"^fit \S+: ", stderr, flags=re.M)
+
+
+@contextlib.contextmanager
+def time_limit(seconds: int):
+    """Fail (TimeoutError) instead of hanging: a SIGALRM after ``seconds``."""
+    def alarm(signum, frame):
+        raise TimeoutError(f"no answer within {seconds} s")
+
+    previous = signal.signal(signal.SIGALRM, alarm)
+    signal.alarm(seconds)
+    try:
+        yield
+    finally:
+        signal.alarm(0)
+        signal.signal(signal.SIGALRM, previous)

@@ -9,37 +9,21 @@ the loader reorders (the data summary says so, with the files' stream names).
 
 from __future__ import annotations
 
-import contextlib
 import json
 import os
 import re
-import signal
 from pathlib import Path
 
 import numpy as np
 import pytest
 
-from bad_input import error_line, fit_args, no_fitting_happened, one_fit_spec, run_cli, snapshot
+from bad_input import (error_line, fit_args, no_fitting_happened, one_fit_spec, run_cli, snapshot,
+                       time_limit)
 from test_runner_end_to_end import STREAMS, invented_spec, write_invented_data, write_spec
 
 T = 24
 #: a tau_int or error printed as nan or below zero (the tau lines of check and the log)
 BAD_TAU = re.compile(r"tau_int[^\n]*(\bnan\b|[=:(] ?-\d)", re.I)
-
-
-@contextlib.contextmanager
-def time_limit(seconds: int):
-    def alarm(signum, frame):
-        raise TimeoutError(f"no answer within {seconds} s")
-
-    previous = signal.signal(signal.SIGALRM, alarm)
-    signal.alarm(seconds)
-    try:
-        yield
-    finally:
-        signal.alarm(0)
-        signal.signal(signal.SIGALRM, previous)
-
 
 @pytest.mark.parametrize("command", ["check", "fit"])
 def test_a_pipe_as_data_file_is_exit_2_without_blocking(command, tmp_path, capsys):

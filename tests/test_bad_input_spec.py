@@ -11,12 +11,10 @@ YAML merge keys (``<<: *base`` with an override) are valid and work.
 
 from __future__ import annotations
 
-import contextlib
 import copy
 import datetime
 import os
 import re
-import signal
 from pathlib import Path
 from typing import Any
 
@@ -25,7 +23,8 @@ import yaml
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from bad_input import error_line, fit_args, no_fitting_happened, one_fit_spec, run_cli, snapshot
+from bad_input import (error_line, fit_args, no_fitting_happened, one_fit_spec, run_cli, snapshot,
+                       time_limit)
 from plateaufit.cli import main
 from plateaufit.errors import SpecError
 from plateaufit.pipeline.rules import load_spec, validate_spec
@@ -40,22 +39,6 @@ JARGON = re.compile(
     r"[Uu]nion\b|typing\.|NoneType|model_type|dict_type|function-(after|plain|before)|"
     r"<class|Traceback|\b(Spec|FitSpec|EnsembleSpec|ObservableSpec|BinningSpec|CovarianceSpec|"
     r"FormulaSpec|ChooseSpec|OutputSpec)\b")
-
-
-@contextlib.contextmanager
-def time_limit(seconds: int):
-    """Fail (TimeoutError) instead of hanging: a SIGALRM after ``seconds``."""
-    def alarm(signum, frame):
-        raise TimeoutError(f"no answer within {seconds} s")
-
-    previous = signal.signal(signal.SIGALRM, alarm)
-    signal.alarm(seconds)
-    try:
-        yield
-    finally:
-        signal.alarm(0)
-        signal.signal(signal.SIGALRM, previous)
-
 
 def _fit(**changes: Any):
     return lambda spec: spec["fits"][0].update(changes)
@@ -244,7 +227,7 @@ def test_an_error_under_a_merge_names_the_overriding_line(data_dir):
     assert "merged_bad.yaml line 11" in err.value.message
 
 
-# --------------------------------------------------------------------------- every key, every wrong kind
+# --------------------------------------------------------------------------- every key, wrong kinds
 
 
 _FULL: dict[str, Any] = {

@@ -364,7 +364,8 @@ class RunFolder:
                 raise self._write_error(exc, staging) from None
             self._commit(staging, completion, set(keep))
         except BaseException as exc:
-            exc.plateaufit_folder = FolderStatus(self.path, self.state, had_results)  # type: ignore[attr-defined]
+            status = FolderStatus(self.path, self.state, had_results)
+            exc.plateaufit_folder = status  # type: ignore[attr-defined]
             raise
         finally:
             if staging is not None:
