@@ -82,6 +82,8 @@ def test_too_few_configurations_tau_int_is_not_estimable_and_nothing_crashes(n_c
     if n_cfg == 2:
         assert tau["value"] is None and tau["error"] is None
         assert any("not estimable" in w for w in results["warnings"])
+        from plateaufit.report.html import render_report
+        assert "not estimable" in render_report(results, figures={})
     else:
         assert tau["value"] >= 0 and tau["error"] >= 0
     assert not any(BAD_TAU.search(w) for w in results["warnings"])

@@ -179,7 +179,10 @@ def _section_data(results: Mapping[str, Any]) -> str:
             reliable = tau.get("reliable")
             flag = ("yes" if reliable else '<span class="tag">no: lower bound</span>'
                     if reliable is False else "n/a")
-            out.append(_row([_e(name), _e(_ve(tau.get("value"), tau.get("error"))),
+            shown = _ve(tau.get("value"), tau.get("error"))
+            if not _num(tau.get("value")) >= 0:    # NaN: too few configurations
+                shown, flag = "not estimable", '<span class="tag">no</span>'
+            out.append(_row([_e(name), _e(shown),
                              _e(tau.get("window", "")), _e(tau.get("t", "")), flag],
                             num=[False, True, True, True, False]))
         out.append("</table>")
