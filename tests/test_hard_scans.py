@@ -3,7 +3,6 @@ cannot resolve at large tmin (the invented ensemble of hard_ensembles.py)."""
 
 from __future__ import annotations
 
-import numpy as np
 import pytest
 
 from hard_ensembles import TRUTH, precise_two_state

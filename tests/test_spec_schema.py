@@ -154,7 +154,7 @@ def test_not_a_mapping(tmp_path):
         (lambda d: d["fits"][0].update(tmin=-1), "fits[0].tmin", "negative"),
         (lambda d: d["fits"][0].update(tmin=[6, 3]), "fits[0].tmin", "lo = 6 > hi = 3"),
         (lambda d: d["fits"][0].update(tmax=[8, 9, 0]), "fits[0].tmax", "step"),
-        (lambda d: d["fits"][0].update(priors={"E0": [0.5]}), "fits[0].priors",
+        (lambda d: d["fits"][0].update(priors={"E0": [0.5]}), "fits[0].priors.E0",
          "[mean, width]"),
         (lambda d: d["observables"]["pion"].update(boundary="twisted"),
          "observables.pion.boundary", "'periodic', 'antiperiodic' or 'open'"),

@@ -31,11 +31,18 @@ def write_bytes(path: str | os.PathLike[str], data: bytes) -> Path:
     -------
     pathlib.Path
         The destination path.
+
+    Raises
+    ------
+    OSError
+        The write failed (disk full, permission, ...); ``filename`` names the
+        destination (not the temporary file), and no temporary file is left.
     """
     target = Path(path)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
+    tmp = None
     try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
         # mkstemp creates the file 0600; give it the mode an ordinary open() would
         os.fchmod(fd, 0o666 & ~_current_umask())
         with os.fdopen(fd, "wb") as handle:
@@ -43,9 +50,11 @@ def write_bytes(path: str | os.PathLike[str], data: bytes) -> Path:
             handle.flush()
             os.fsync(handle.fileno())
         os.replace(tmp, target)
-    except BaseException:
-        if os.path.exists(tmp):
+    except BaseException as exc:
+        if tmp is not None and os.path.exists(tmp):
             os.unlink(tmp)
+        if isinstance(exc, OSError) and (exc.filename is None or exc.filename == tmp):
+            exc.filename = str(target)   # name the destination, not the temporary file
         raise
     return target
 

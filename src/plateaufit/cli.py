@@ -172,7 +172,12 @@ def _interrupted(exc: KeyboardInterrupt) -> int:
     """One line on stderr for an interrupted run; the exit status 128 + signal."""
     signum = exc.signum if isinstance(exc, _Stopped) else signal.SIGINT
     name = signal.Signals(signum).name
-    print(f"plateaufit: interrupted ({name}); the run did not finish", file=sys.stderr)
+    from plateaufit.run_folder import interruption_message   # what is on disk now
+
+    state = interruption_message(exc)
+    finished = state.startswith("the results were complete")
+    print(f"plateaufit: interrupted ({name}); "
+          + (state if finished else f"the run did not finish: {state}"), file=sys.stderr)
     return 128 + int(signum)
 
 

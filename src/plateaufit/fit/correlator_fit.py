@@ -27,7 +27,6 @@ from typing import Any
 
 import numpy as np
 
-from plateaufit.errors import FitError
 from plateaufit.fit.central import DEFAULT_TOL, CentralFit
 from plateaufit.fit.diagnostics import Flag, diagnose, is_degenerate, undetermined_parameters
 from plateaufit.fit.models import CorrelatorModel

@@ -703,7 +703,7 @@ class CorrelatorModel:
         if values.shape[-1] != self.n_params:
             raise ValueError(f"expected {self.n_params} parameters "
                              f"{list(self.reported_names)}, got {values.shape[-1]}")
-        s, so = self.states, self.oscillating
+        so = self.oscillating
         e = values[..., self._ph_E]
         parts = [e[..., :1], _log_gaps(e, "state")]
         if so:

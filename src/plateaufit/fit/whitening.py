@@ -52,10 +52,11 @@ def cholesky_factor(cov: np.ndarray, n_bins: int | None = None, where: str = "co
         chol = np.linalg.cholesky(cov)
     except np.linalg.LinAlgError:
         raise FitError(where, f"the covariance matrix{counts} is not positive definite "
-                       "(singular); use shrinkage, more bins, or fewer timeslices") from None
+                       "(singular); use more bins, fewer timeslices, or shrinkage (a larger "
+                       "one if some is applied)") from None
     if not np.all(np.diagonal(chol) > 0):
-        raise FitError(where, f"the covariance matrix{counts} is singular; use shrinkage, "
-                       "more bins, or fewer timeslices")
+        raise FitError(where, f"the covariance matrix{counts} is singular; use more bins, "
+                       "fewer timeslices, or shrinkage (a larger one if some is applied)")
     return chol
 
 

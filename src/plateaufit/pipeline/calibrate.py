@@ -51,7 +51,8 @@ from plateaufit.pipeline.inputs import file_sha256, load_ensemble
 from plateaufit.pipeline.prepare import prepare
 from plateaufit.pipeline.results import Results
 from plateaufit.pipeline.rules import as_spec
-from plateaufit.pipeline.run import RunLog, _check_output_dir, run_analysis
+from plateaufit.pipeline.output import output_folder, output_names
+from plateaufit.pipeline.run import RunLog, run_analysis
 from plateaufit.specfile import Spec
 from plateaufit.stats.replicas import ReplicaModel, fit_replica_model
 
@@ -244,10 +245,11 @@ def coverage_table(calibration: CalibrationResults) -> str:
 
 def write_calibration(base: Results, calibration: CalibrationResults, out_dir: Path,
                       plots: bool, log: RunLog) -> Path:
-    """The fit's outputs with the calibration section, then calibration.json (last)."""
+    """The fit's outputs with the calibration section and calibration.json into
+    ``out_dir`` (a staging folder: :mod:`plateaufit.run_folder` moves them into place,
+    results.json last)."""
     from plateaufit.report.tables import write_tables
 
-    out_dir.mkdir(parents=True, exist_ok=True)
     write_tables(base, out_dir)
     if plots:
         from plateaufit.report.calibration_plots import make_calibration_plots
@@ -310,8 +312,11 @@ def calibrate_spec(source: str | os.PathLike[str] | Spec | Mapping[str, Any],
     replicas = _check_count(replicas)
     seed = _check_seed(seed)
     file_truth = read_truth_file(truth, spec) if truth is not None else None
-    out_dir = Path(out) if out is not None else spec.output_dir
-    _check_output_dir(out_dir, "--out" if out is not None else "output.dir")
+    folder = output_folder(spec, out)
+    out_dir = folder.path
+    plots = plots and spec.output.plots
+    # before any fitting: outputs clear of the inputs, the folder writable, with room
+    folder.preflight([*output_names(spec, plots=plots), "calibration.json"], plots=plots)
     log = RunLog(echo=echo)
     log.info(f"plateaufit {__version__} calibrate: "
              f"{spec.path if spec.path is not None else '(in memory)'}")
@@ -321,7 +326,8 @@ def calibrate_spec(source: str | os.PathLike[str] | Spec | Mapping[str, Any],
                                       log=log)
     calibration = replace(calibration, output_dir=str(out_dir))
     log.detail(coverage_table(calibration))
-    write_calibration(base, calibration, out_dir, plots and spec.output.plots, log)
+    with folder.writing() as staging:
+        write_calibration(base, calibration, staging, plots, log)
     return calibration.to_dict()
 
 

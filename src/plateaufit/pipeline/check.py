@@ -16,21 +16,25 @@ bin size, the binned data), and the covariance has the same options
 from __future__ import annotations
 
 import os
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from plateaufit.errors import FitError, PlateaufitError
+from plateaufit.data.loaders import RawCorrelator
 from plateaufit.fit.scan import prepare_scan
 from plateaufit.pipeline.fits import covariance_kwargs, fit_kwargs
+from plateaufit.pipeline.inputs import load_inputs
 from plateaufit.pipeline.keys import located
-from plateaufit.pipeline.inputs import load_ensemble
+from plateaufit.pipeline.output import output_folder, output_names
 from plateaufit.pipeline.prepare import (Prepared, choose_bins, effective_mass_kind, minimum_bins,
-                                         prepare)
+                                         prepare, tau_estimable)
 from plateaufit.pipeline.rules import load_spec
 from plateaufit.pipeline.summary import effective_mass_results
 from plateaufit.report.tables import format_value_error
 from plateaufit.specfile import FitSpec, Spec
+from plateaufit.stats.autocorr import TauIntResult
 from plateaufit.stats.covariance import covariance_of_mean
 
 __all__ = ["check_spec", "summarise"]
@@ -65,37 +69,60 @@ def _shown_timeslices(n_t: int, n: int = _N_SHOWN, last: int | None = None) -> l
     return [int(t) for t in picks]
 
 
-def _stream_text(counts: dict[int, int]) -> str:
+def _stream_text(counts: dict[int, int], names: dict[int, str] | None = None) -> str:
+    """``2 streams (stream a: 600, stream b: 400)``, with the files' stream names."""
+    names = names or {}
     if len(counts) == 1:
-        return "1 stream"
-    sizes = ", ".join(f"stream {label}: {n}" for label, n in counts.items())
+        label = next(iter(counts))
+        return f"1 stream ({names[label]})" if label in names else "1 stream"
+    sizes = ", ".join(f"stream {names.get(label, label)}: {n}" for label, n in counts.items())
     return f"{len(counts)} streams ({sizes})"
 
 
-def _observable_lines(spec: Spec, prepared: Prepared, name: str, own_size: int,
-                      notes: _Notes) -> list[str]:
+def _tau_cell(r: TauIntResult) -> str:
+    if not tau_estimable(r):
+        return "not estimable"
+    return _fmt(r.tau, r.error) + ("" if r.reliable else " (lower bound)")
+
+
+def _observable_lines(spec: Spec, prepared: Prepared, name: str, own_size: int | None,
+                      notes: _Notes, raws: Mapping[str, RawCorrelator] | None = None
+                      ) -> list[str]:
     ens = prepared.ensemble
     tau_results = prepared.taus[name]
     obs = spec.observables[name]
     n_t = ens.correlators[name].shape[1]
     lines = [f"observable {name}: {obs.file} ({obs.resolved_format})"]
-    lines.append(f"  configurations: {ens.n_configs} in {_stream_text(ens.stream_sizes())}")
+    lines.append(f"  configurations: {ens.n_configs} in "
+                 f"{_stream_text(ens.stream_sizes(), ens.stream_names)}")
+    raw = (raws or {}).get(name)
+    if name in ens.reordered:
+        moved = f"{raw.n_moved} of {ens.n_configs} configurations" if raw is not None \
+            else "configurations"
+        lines.append(f"  reordered: the file stores its configurations out of order; {moved} "
+                     "were put in Monte Carlo order (by stream, then configuration id)")
     if ens.folded[name]:
         extent = f"folded to t = 0..{n_t - 1} ({n_t} timeslices)"
     else:
         extent = f"not folded, t = 0..{n_t - 1}"
     lines.append(f"  time extent: T = {ens.time_extent}, {ens.boundaries[name]} boundary, "
                  f"{extent}")
-    shown = []
-    for t in _shown_timeslices(n_t):
-        r = tau_results[t]
-        mark = "" if r.reliable else " (lower bound)"
-        shown.append(f"t={t}: {_fmt(r.tau, r.error)}{mark}")
+    shown = [f"t={t}: {_tau_cell(tau_results[t])}" for t in _shown_timeslices(n_t)]
     lines.append(f"  {TAU_CONVENTION}: " + ", ".join(shown))
     worst, r = prepared.largest_tau(name)
-    lines.append(f"  largest tau_int: {_fmt(r.tau, r.error)} at t = {worst} "
-                 f"(window W = {r.window}){'' if r.reliable else ', unreliable'}")
-    unreliable = [t for t, res in enumerate(tau_results) if not res.reliable]
+    if tau_estimable(r):
+        lines.append(f"  largest tau_int: {_fmt(r.tau, r.error)} at t = {worst} "
+                     f"(window W = {r.window}){'' if r.reliable else ', unreliable'}")
+    else:
+        lines.append("  largest tau_int: not estimable at any timeslice (too few "
+                     "configurations for an autocorrelation)")
+    missing = [t for t, res in enumerate(tau_results) if not tau_estimable(res)]
+    if missing:
+        notes.add(f"{name}: tau_int is not estimable at {len(missing)} of {n_t} timeslices "
+                  f"({ens.n_configs} configurations are too few); the errors cannot be "
+                  "corrected for autocorrelation there")
+    unreliable = [t for t, res in enumerate(tau_results)
+                  if not res.reliable and tau_estimable(res)]
     if unreliable:
         listed = ", ".join(str(t) for t in unreliable[:8]) + (", ..." if len(unreliable) > 8
                                                              else "")
@@ -103,7 +130,8 @@ def _observable_lines(spec: Spec, prepared: Prepared, name: str, own_size: int,
                      "autocorrelation; the value is a lower bound")
         notes.add(f"{name}: tau_int is unreliable (a lower bound) at {len(unreliable)} of {n_t} "
                   "timeslices; more configurations are needed for a trustworthy error")
-    lines.append(f"  bin size this observable alone would need: {own_size} "
+    own = own_size if own_size is not None else "not estimable"
+    lines.append(f"  bin size this observable alone would need: {own} "
                  f"(binning uses {prepared.bin_size})")
 
     kind = effective_mass_kind(spec, ens, name)
@@ -177,8 +205,17 @@ def _range_text(values: list[int]) -> str:
     return f"{values[0]}..{values[-1]}{tail}"
 
 
-def summarise(spec: Spec, prepared: Prepared) -> str:
+def summarise(spec: Spec, prepared: Prepared,
+              raws: Mapping[str, RawCorrelator] | None = None) -> str:
     """The data summary of ``plateaufit check`` for a spec and its prepared data.
+
+    Parameters
+    ----------
+    spec, prepared
+        The spec and :func:`~plateaufit.pipeline.prepare.prepare`'s result.
+    raws : mapping, optional
+        The files as read (:func:`~plateaufit.pipeline.inputs.load_inputs`): how
+        many configurations a loader reordered.
 
     Returns
     -------
@@ -192,25 +229,41 @@ def summarise(spec: Spec, prepared: Prepared) -> str:
         notes.add(f"binning: {note}")
     if spec.binning.size == "auto":
         how = "binning.size: auto, from the largest tau_int"
+    elif prepared.auto_bin_size is None:
+        how = (f"binning.size: {prepared.bin_size}; auto could not choose one, tau_int being "
+               "estimable nowhere")
     else:
         how = f"binning.size: {prepared.bin_size}; auto would choose {prepared.auto_bin_size}"
     where = f"{spec.path}" if spec.path is not None else "spec"
     lines = [f"spec {where}: valid ({len(spec.observables)} observable(s), "
              f"{len(spec.fits)} fit(s))"]
     lines.append(f"ensemble {ensemble.name}: T = {ensemble.time_extent}, {ensemble.n_configs} "
-                 f"configurations in {_stream_text(ensemble.stream_sizes())}")
+                 f"configurations in "
+                 f"{_stream_text(ensemble.stream_sizes(), ensemble.stream_names)}")
+    if ensemble.reordered:
+        listed = ", ".join(ensemble.reordered)
+        if ensemble.aligned_by == "rows":
+            notes.add(f"the files of {listed} were reordered into Monte Carlo order, but not "
+                      "every file has configuration ids, so the observables are matched row "
+                      "by row: files without ids must list their configurations in Monte "
+                      "Carlo order (or give every file ids)")
+        else:
+            lines.append(f"reordered: {listed} stored configurations out of order; all files "
+                         "are matched by configuration id")
     lines.append(f"binning: bin size {prepared.bin_size} ({how}) -> {prepared.n_bins} bins, "
                  f"{prepared.n_dropped} configuration(s) dropped at stream ends")
-    if prepared.bin_size < prepared.auto_bin_size:
+    if prepared.auto_bin_size is not None and prepared.bin_size < prepared.auto_bin_size:
         notes.add(f"binning.size {prepared.bin_size} is below the {prepared.auto_bin_size} the "
                   "autocorrelation suggests; errors may be underestimated")
     for name in ensemble.correlators:
-        own, own_notes = choose_bins(np.array([r.tau for r in prepared.taus[name]]),
-                                     prepared.stream_sizes, least)
-        for note in own_notes:
-            notes.add(f"binning: {note}")
+        taus = np.array([r.tau for r in prepared.taus[name]], dtype=float)
+        own: int | None = None
+        if np.isfinite(taus).any():
+            own, own_notes = choose_bins(taus, prepared.stream_sizes, least)
+            for note in own_notes:
+                notes.add(f"binning: {note}")
         lines.append("")
-        lines += _observable_lines(spec, prepared, name, own, notes)
+        lines += _observable_lines(spec, prepared, name, own, notes, raws)
     for index, fit in enumerate(spec.fits):
         if fit.matrix is not None:
             continue                      # with its matrix, below
@@ -244,7 +297,8 @@ def check_spec(path: str | os.PathLike[str]) -> str:
     DataError
         A data file is missing or unusable (``where`` is
         ``observables.NAME.file`` or ``ensemble.streams``), or the data cannot
-        be binned (``binning.size``).
+        be binned (``binning.size``), or an output of ``plateaufit fit`` would
+        replace an input (``where`` is ``output.dir``).
 
     References
     ----------
@@ -252,4 +306,7 @@ def check_spec(path: str | os.PathLike[str]) -> str:
     (2004) 143 -- the tau_int convention and automatic window used here.
     """
     spec = load_spec(path)
-    return summarise(spec, prepare(spec, load_ensemble(spec)))
+    output_folder(spec).check_outputs(output_names(spec, plots=spec.output.plots),
+                                      plots=spec.output.plots)
+    ensemble, raws = load_inputs(spec)
+    return summarise(spec, prepare(spec, ensemble), raws)

@@ -23,6 +23,10 @@ __all__ = ["derive"]
 def derive(spec: Spec, fits: dict[str, FitResult]) -> dict[str, DerivedQuantity]:
     """``derived.NAME`` of the spec, evaluated on the fits' ``derived_inputs``.
 
+    A quantity one of whose references is withheld (the chosen fit is not a
+    fit, see :func:`plateaufit.pipeline.summary.withheld_parameters`) is NaN,
+    with ``withheld_inputs`` saying which.
+
     Raises
     ------
     FitError
@@ -40,6 +44,14 @@ def derive(spec: Spec, fits: dict[str, FitResult]) -> dict[str, DerivedQuantity]
         except ValueError as exc:      # load_spec checked it already
             raise SpecError(where, str(exc)) from None
         inputs = {}
+        withheld = [ref for ref in expr.references if expr.parts[ref][1] in
+                    getattr(getattr(fits[expr.parts[ref][0]], "chosen", None), "withheld", ())]
+        if withheld:   # an input that is not a result: neither is the quantity
+            nan = float("nan")
+            out[name] = DerivedQuantity(expression=text, references=list(expr.references),
+                                        estimate=ParamEstimate(nan, nan, nan, nan),
+                                        withheld_inputs=tuple(withheld))
+            continue
         for ref in expr.references:
             fit_name, param = expr.parts[ref]
             if param not in fits[fit_name].derived_inputs:

@@ -11,12 +11,13 @@ import hashlib
 from pathlib import Path
 
 from plateaufit.data.ensemble import Ensemble, align_observables
+from plateaufit.data.files import FileContext, open_regular
 from plateaufit.data.loaders import RawCorrelator, load_correlator
 from plateaufit.errors import DataError
 from plateaufit.pipeline.keys import located
 from plateaufit.specfile import Spec
 
-__all__ = ["load_ensemble", "data_checksums", "observable_file", "file_sha256"]
+__all__ = ["load_ensemble", "load_inputs", "data_checksums", "observable_file", "file_sha256"]
 
 
 def observable_file(spec: Spec, name: str) -> Path:
@@ -57,6 +58,12 @@ def load_ensemble(spec: Spec) -> Ensemble:
         ``where`` is ``observables.NAME.file`` (or ``ensemble.streams``) and the
         message names the file.
     """
+    return load_inputs(spec)[0]
+
+
+def load_inputs(spec: Spec) -> tuple[Ensemble, dict[str, RawCorrelator]]:
+    """:func:`load_ensemble`, and every observable's file as read (``RawCorrelator``:
+    what a data summary reports of the files, e.g. rows the loader reordered)."""
     T = spec.ensemble.time_extent
     raws: dict[str, RawCorrelator] = {}
     key_of_source: dict[str, str] = {}
@@ -77,7 +84,7 @@ def load_ensemble(spec: Spec) -> Ensemble:
         key_of_source.setdefault(str(raw.source), key)
     try:
         with located():
-            return align_observables(
+            ensemble = align_observables(
                 raws,
                 name=spec.ensemble.name,
                 time_extent=T,
@@ -90,6 +97,7 @@ def load_ensemble(spec: Spec) -> Ensemble:
         if where == err.where:
             raise
         raise DataError(where, err.message) from None
+    return ensemble, raws
 
 
 def data_checksums(spec: Spec) -> dict[str, str]:
@@ -99,12 +107,17 @@ def data_checksums(spec: Spec) -> dict[str, str]:
 
 
 def file_sha256(path: Path, where: str = "") -> str:
-    """SHA-256 (hex) of a file's bytes, read in blocks; DataError at ``where`` if unreadable."""
+    """SHA-256 (hex) of a file's bytes, read in blocks; DataError at ``where`` if unreadable.
+
+    Opened through :func:`plateaufit.data.files.open_regular`: a path swapped for a pipe
+    or device since it was loaded is refused, never read forever.
+    """
     digest = hashlib.sha256()
-    try:
-        with open(path, "rb") as handle:
+    with open_regular(Path(path), FileContext(Path(path), where)) as handle:
+        try:
             for block in iter(lambda: handle.read(1 << 20), b""):
                 digest.update(block)
-    except OSError as exc:
-        raise DataError(where or str(path), f"cannot read {path} ({exc.strerror or exc})") from None
+        except OSError as exc:
+            raise DataError(where or str(path), f"cannot read {path} "
+                            f"({exc.strerror or exc})") from None
     return digest.hexdigest()

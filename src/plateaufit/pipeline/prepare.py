@@ -32,7 +32,8 @@ from plateaufit.stats.autocorr import (BinningWarning, ShortChainWarning, TauInt
 from plateaufit.stats.resample import bin_samples
 
 __all__ = ["Prepared", "prepare", "tau_int_per_timeslice", "choose_bins", "minimum_bins",
-           "check_bin_size", "effective_mass_kind", "ensemble_result"]
+           "check_bin_size", "effective_mass_kind", "ensemble_result", "tau_estimable",
+           "tau_text"]
 
 #: fewest bins ``binning.size: auto`` leaves (common practice: fewer make the
 #: jackknife covariance too noisy to invert)
@@ -51,8 +52,9 @@ class Prepared:
         Observable -> tau_int of every timeslice (list of ``TauIntResult``).
     bin_size : int
         Configurations per bin used.
-    auto_bin_size : int
-        What ``binning.size: auto`` chooses (equal to ``bin_size`` when auto).
+    auto_bin_size : int or None
+        What ``binning.size: auto`` chooses (equal to ``bin_size`` when auto);
+        None when tau_int is estimable at no timeslice (an explicit size only).
     bin_size_notes : tuple of str
         Why the automatic choice was capped (``BinningWarning`` texts).
     automatic : bool
@@ -66,7 +68,7 @@ class Prepared:
     ensemble: Ensemble
     taus: dict[str, list[TauIntResult]]
     bin_size: int
-    auto_bin_size: int
+    auto_bin_size: int | None
     bin_size_notes: tuple[str, ...]
     automatic: bool
     binned: dict[str, np.ndarray]
@@ -83,10 +85,30 @@ class Prepared:
         return [int(n) for n in self.ensemble.stream_sizes().values()]
 
     def largest_tau(self, name: str) -> tuple[int, TauIntResult]:
-        """The timeslice of observable ``name`` with the largest tau_int, and its result."""
-        values = np.array([r.tau for r in self.taus[name]])
-        t = int(np.nanargmax(values))
+        """The timeslice of observable ``name`` with the largest tau_int, and its result.
+
+        When tau_int is estimable at no timeslice (NaN everywhere: too few
+        configurations), the first timeslice, whose result is NaN
+        (:func:`tau_estimable` says so).
+        """
+        values = np.array([r.tau for r in self.taus[name]], dtype=float)
+        finite = np.isfinite(values)
+        t = int(np.argmax(np.where(finite, values, -np.inf))) if finite.any() else 0
         return t, self.taus[name][t]
+
+
+def tau_estimable(result: TauIntResult) -> bool:
+    """Whether a tau_int result is a number to show: finite and not below zero, with a
+    finite, non-negative error (two configurations give NaN: not estimable)."""
+    tau, err = float(result.tau), float(result.error)
+    return bool(np.isfinite(tau) and tau >= 0 and np.isfinite(err) and err >= 0)
+
+
+def tau_text(result: TauIntResult, fmt: str = ".2f") -> str:
+    """``1.62 +- 0.44``, or ``not estimable`` (see :func:`tau_estimable`)."""
+    if not tau_estimable(result):
+        return "not estimable"
+    return f"{result.tau:{fmt}} +- {result.error:{fmt}}"
 
 
 def tau_int_per_timeslice(series: np.ndarray, stream_labels: np.ndarray) -> list[TauIntResult]:
@@ -155,8 +177,12 @@ def prepare(spec: Spec, ensemble: Ensemble) -> Prepared:
     taus = {name: tau_int_per_timeslice(series, labels)
             for name, series in ensemble.correlators.items()}
     every_tau = np.concatenate([[r.tau for r in res] for res in taus.values()])
-    auto_size, notes = choose_bins(every_tau, sizes, minimum_bins(spec))
-    bin_size = auto_size if spec.binning.size == "auto" else int(spec.binning.size)
+    automatic = spec.binning.size == "auto"
+    if automatic or np.isfinite(every_tau).any():
+        auto_size, notes = choose_bins(every_tau, sizes, minimum_bins(spec))
+    else:   # an explicit size where tau_int is estimable nowhere: nothing to compare it with
+        auto_size, notes = None, ()
+    bin_size = auto_size if automatic else int(spec.binning.size)
     check_bin_size(bin_size, sizes)
     binned: dict[str, np.ndarray] = {}
     n_dropped = 0

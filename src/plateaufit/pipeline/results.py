@@ -253,7 +253,10 @@ class ChosenResult:
     one (written as ``chosen.best``; its range and fit quality are also
     written at the top level of ``chosen``, as results.json always had them).
     ``converged`` is the chosen point's, or for an average whether every
-    point with weight > 0 converged.
+    point with weight > 0 converged. ``withheld`` lists the parameters that are
+    not results (a chosen point that is not a fit: all of them; else those of
+    states it does not resolve): their values are NaN, the reasons in
+    ``withheld_reasons``.
     """
 
     method: str
@@ -263,6 +266,8 @@ class ChosenResult:
     band: tuple[int, int]
     n_fits: int = 1
     n_excluded: int = 0
+    withheld: tuple[str, ...] = ()          # parameters that are not results (NaN values)
+    withheld_reasons: tuple[str, ...] = ()  # why (the flags' messages)
 
     @property
     def is_average(self) -> bool:
@@ -276,7 +281,9 @@ class ChosenResult:
                                "chi2": p.chi2, "dof": p.dof, "p_value": p.p_value,
                                "p_value_hotelling": p.p_value_hotelling,
                                "converged": self.converged,
-                               "band": {"tmin": self.band[0], "tmax": self.band[1]}}
+                               "band": {"tmin": self.band[0], "tmax": self.band[1]},
+                               "withheld": list(self.withheld),
+                               "withheld_reasons": list(self.withheld_reasons)}
         if self.is_average:
             out.update(n_fits=self.n_fits, n_excluded=self.n_excluded, best=p.to_dict())
         return out
@@ -291,7 +298,9 @@ class ChosenResult:
                    params={k: ParamEstimate.from_dict(v) for k, v in _get(d, "params").items()},
                    point=point, converged=bool(d.get("converged", True)),
                    band=(_i(band.get("tmin", d.get("tmin"))), _i(band.get("tmax", d.get("tmax")))),
-                   n_fits=_i(d.get("n_fits"), 1), n_excluded=_i(d.get("n_excluded")))
+                   n_fits=_i(d.get("n_fits"), 1), n_excluded=_i(d.get("n_excluded")),
+                   withheld=tuple(str(x) for x in d.get("withheld") or ()),
+                   withheld_reasons=tuple(str(x) for x in d.get("withheld_reasons") or ()))
 
 
 @dataclass(frozen=True)
@@ -555,14 +564,16 @@ class DerivedQuantity:
     """A derived quantity (``derived.NAME``).
 
     ``n_dropped`` (jackknife samples left out where a refit of an input
-    failed) is kept in memory for the warnings; results.json states it in a
-    warning, not as a key.
+    failed) and ``withheld_inputs`` (references that are not results, so the
+    quantity is NaN) are kept in memory for the warnings; results.json states
+    them in a warning, not as keys.
     """
 
     expression: str
     references: list[str]
     estimate: ParamEstimate
     n_dropped: int = 0
+    withheld_inputs: tuple[str, ...] = ()   # references that are not results: not computed
 
     def to_dict(self) -> dict[str, Any]:
         return {"expression": self.expression, "references": list(self.references),

@@ -5,15 +5,20 @@
 (:mod:`~plateaufit.pipeline.fits`), the derived quantities
 (:mod:`~plateaufit.pipeline.derived`) and the warnings table
 (:mod:`~plateaufit.pipeline.warnings`), and writes results.json, the tables, the
-log, and (optionally) the plots and the report page. Nothing is written until
-all fitting is done, every file is written atomically, and results.json is
-written last, so its presence means a complete run.
+log, and (optionally) the plots and the report page. Before any fitting the
+output folder is checked (:meth:`~plateaufit.run_folder.RunFolder.preflight`:
+no output over an input, writable, with room); nothing is written until all
+fitting is done; then every file goes into a staging folder and is moved into
+place with results.json last (:mod:`plateaufit.run_folder`), so its presence
+means a complete run, and an interruption leaves either the folder as it was or
+one marked incomplete (never one that looks complete but mixes two runs). What
+escapes :func:`run_spec` carries the folder's state
+(:func:`plateaufit.run_folder.folder_state`).
 """
 
 from __future__ import annotations
 
 import datetime as _dt
-import json
 import os
 import platform
 import sys
@@ -25,18 +30,19 @@ from typing import Any
 import numpy as np
 
 from plateaufit import __version__
-from plateaufit.atomic import write_text
 from plateaufit.data.ensemble import Ensemble
-from plateaufit.errors import DataError
 from plateaufit.parallel import make_executor
 from plateaufit.pipeline.derived import derive
 from plateaufit.pipeline.fits import n_scan_points, run_fit
 from plateaufit.pipeline.inputs import data_checksums, file_sha256, load_ensemble
 from plateaufit.pipeline.matrices import GevpSolutions, log_matrices, solve_all, summarise_matrices
-from plateaufit.pipeline.prepare import Prepared, ensemble_result, prepare
+from plateaufit.pipeline.output import output_folder, output_names, write_outputs
+from plateaufit.pipeline.prepare import (Prepared, ensemble_result, prepare, tau_estimable,
+                                         tau_text)
 from plateaufit.pipeline.results import FitResult, Results
 from plateaufit.pipeline.rules import as_spec
 from plateaufit.pipeline.warnings import excluded_reasons, with_warnings
+from plateaufit.run_folder import COMPLETION, FolderState, FolderStatus, folder_state
 from plateaufit.specfile import Spec
 
 __all__ = ["run_spec", "run_analysis", "RunLog"]
@@ -62,10 +68,14 @@ class RunLog:
 def _log_prepared(log: RunLog, prepared: Prepared) -> None:
     for name in prepared.ensemble.correlators:
         t, r = prepared.largest_tau(name)
-        log.info(f"{name}: tau_int (1/2 + sum rho convention) = {r.tau:.2f} "
-                 f"+- {r.error:.2f} at t = {t}, window {r.window}")
+        if tau_estimable(r):
+            log.info(f"{name}: tau_int (1/2 + sum rho convention) = {tau_text(r)} at t = {t}, "
+                     f"window {r.window}")
+        else:
+            log.info(f"{name}: tau_int (1/2 + sum rho convention) not estimable at any "
+                     "timeslice (too few configurations)")
     if prepared.automatic:
-        largest = max(float(np.nanmax([r.tau for r in res])) for res in prepared.taus.values())
+        largest = max(prepared.largest_tau(name)[1].tau for name in prepared.taus)
         log.info(f"bin size {prepared.bin_size} chosen automatically from the largest tau_int "
                  f"({largest:.2f})")
     if prepared.n_dropped:
@@ -77,8 +87,12 @@ def _log_prepared(log: RunLog, prepared: Prepared) -> None:
 def _log_fit(log: RunLog, fit: FitResult) -> None:
     params = fit.chosen.params
     first = "E0" if "E0" in params else next(iter(params))   # a formula has its own names
-    log.info(f"fit {fit.name}: {first} = {params[first].value:.6g} +- "
-             f"{params[first].error:.2g} ({fit.chosen.method})")
+    if first in fit.chosen.withheld:
+        log.info(f"fit {fit.name}: no result: the chosen fit is not a fit (its values are "
+                 "withheld; see the warning)")
+    else:
+        log.info(f"fit {fit.name}: {first} = {params[first].value:.6g} +- "
+                 f"{params[first].error:.2g} ({fit.chosen.method})")
     if fit.chosen.n_excluded:
         shown = ", ".join(f"{code} {n}" for code, n in sorted(excluded_reasons(fit).items()))
         log.info(f"fit {fit.name}: {fit.chosen.n_excluded} of {len(fit.scan)} scan points given "
@@ -146,6 +160,10 @@ def run_analysis(spec: Spec, *, executor: Any = None, progress: bool = False,
     derived = derive(spec, fits)
     for name, d in derived.items():
         e = d.estimate
+        if d.withheld_inputs:
+            log.info(f"derived {name} = {d.expression}: not computed ("
+                     f"{', '.join(d.withheld_inputs)} withheld)")
+            continue
         log.info(f"derived {name} = {d.expression}: {e.value:.6g} +- {e.error:.2g} "
                  f"(stat {e.stat_error:.2g}, sys {e.sys_error:.2g})")
     provenance: dict[str, Any] = {
@@ -170,35 +188,6 @@ def run_analysis(spec: Spec, *, executor: Any = None, progress: bool = False,
     for w in results.warnings:
         log.info(f"warning: {w.message}")
     return results
-
-
-def _check_output_dir(out_dir: Path, key: str) -> None:
-    """Refuse, before any fitting, an output directory that cannot be written."""
-    for candidate in (out_dir, *out_dir.parents):
-        if candidate.exists():
-            if not candidate.is_dir():
-                raise DataError(str(candidate), f"{key} must name a directory, but this is a "
-                                "file; choose another output directory")
-            if not os.access(candidate, os.W_OK | os.X_OK):
-                raise DataError(str(candidate), f"{key}: this directory is not writable; "
-                                "choose another output directory")
-            return
-
-
-def _write_outputs(results: Results, data: dict[str, Any], out_dir: Path, plots: bool,
-                   log: RunLog) -> None:
-    """Tables, plots and page first; results.json last (its presence means complete)."""
-    from plateaufit.report.tables import write_tables
-
-    write_tables(results, out_dir)
-    if plots:
-        from plateaufit.report.html import write_report
-        from plateaufit.report.plots import make_all_plots
-
-        page = write_report(results, out_dir, figures=make_all_plots(results, out_dir))
-        log.info(f"report page: {page}")
-    write_text(out_dir / "run.log", "\n".join(log.lines) + "\n")
-    write_text(out_dir / "results.json", json.dumps(data, indent=1, allow_nan=False) + "\n")
 
 
 def run_spec(source: str | os.PathLike[str] | Spec | Mapping[str, Any],
@@ -240,14 +229,31 @@ def run_spec(source: str | os.PathLike[str] | Spec | Mapping[str, Any],
         For user errors; each names the spec key path or file.
     """
     spec = as_spec(source, base_dir=base_dir)
-    out_dir = Path(out) if out is not None else spec.output_dir
+    folder = output_folder(spec, out)
     plots = plots and spec.output.plots
-    _check_output_dir(out_dir, "--out" if out is not None else "output.dir")
-    log = RunLog(echo=echo)
-    log.info(f"plateaufit {__version__}: {spec.path if spec.path is not None else '(in memory)'}")
-    with make_executor(jobs=jobs, scheduler=scheduler) as executor:
-        results = run_analysis(spec, executor=executor, progress=progress, log=log,
-                               out_dir=out_dir, spec_path=spec.path)
-    data = results.to_dict()
-    _write_outputs(results, data, out_dir, plots, log)
+    try:
+        # before any fitting: outputs clear of the inputs, the folder writable, with room
+        folder.preflight(output_names(spec, plots=plots), plots=plots)
+        log = RunLog(echo=echo)
+        log.info(f"plateaufit {__version__}: "
+                 f"{spec.path if spec.path is not None else '(in memory)'}")
+        with make_executor(jobs=jobs, scheduler=scheduler) as executor:
+            results = run_analysis(spec, executor=executor, progress=progress, log=log,
+                                   out_dir=folder.path, spec_path=spec.path)
+        data = results.to_dict()
+        if plots:
+            log.info(f"report page: {folder.path / 'report.html'}")
+        with folder.writing() as staging:
+            write_outputs(results, data, staging, plots=plots, log_lines=log.lines)
+    except BaseException as exc:
+        if folder_state(exc) is None:   # it never reached the folder: nothing there changed
+            exc.plateaufit_folder = FolderStatus(  # type: ignore[attr-defined]
+                folder.path, FolderState.UNCHANGED, (folder.path / COMPLETION).is_file())
+        raise
+    removed = folder.report.removed
+    if removed:
+        log.info(f"removed {len(removed)} file(s) of an earlier run that this run did not "
+                 f"write again ({', '.join(removed[:5])}{', ...' if len(removed) > 5 else ''})")
+    for rel in folder.report.kept_changed:
+        log.info(f"kept {folder.path / rel}: an earlier run wrote it, but it was changed since")
     return data

@@ -22,6 +22,7 @@ theory results", Phys. Rev. D 103 (2021) 114502.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping, Sequence
 from typing import Any
 
@@ -36,7 +37,8 @@ from plateaufit.pipeline.results import (ChosenResult, CovarianceSummary, Effect
                                          ScanPointResult)
 from plateaufit.stats.effmass import effective_mass_jackknife
 
-__all__ = ["summarise_scan", "scan_point_result", "effective_mass_results", "reported_names"]
+__all__ = ["summarise_scan", "scan_point_result", "effective_mass_results", "reported_names",
+           "withheld_parameters", "central_failed"]
 
 
 def reported_names(fit: Any) -> list[str]:
@@ -52,10 +54,45 @@ def _reported_values(fit: Any) -> Mapping[str, float]:
     return values if values is not None else central.reported
 
 
+def central_failed(fit: Any) -> bool:
+    """Whether the central fit of a CorrelatorFit reached no minimum: its parameters are
+    where the minimiser stopped (often the start values), never results."""
+    codes = {str(c).split(":")[0] for c in getattr(fit, "flag_codes", ())}
+    return "central-failed" in codes or not bool(getattr(fit.central, "converged", True))
+
+
+def withheld_parameters(fit: Any) -> tuple[list[str], list[str]]:
+    """The parameters of a chosen single fit that are not results, and why.
+
+    A fit that did not converge (central fit or a refit) or carries a flag that
+    makes it degenerate (``at-bound``, ``ground-collapsed``, ...) is not a fit:
+    every parameter is withheld. Otherwise the parameters of states the data do
+    not resolve (``state-unresolved``) are. Returns ``(names, reasons)``.
+    """
+    names = reported_names(fit)
+    flags = tuple(getattr(fit, "flags", ()) or ())
+    reasons = [str(getattr(f, "message", f)) for f in flags
+               if getattr(f, "effect", "") == "degenerate"]
+    if not bool(fit.converged) and not reasons:
+        reasons.append("the fit did not converge")
+    if reasons or bool(getattr(fit, "degenerate", False)):
+        return names, reasons or [str(c) for c in getattr(fit, "flag_codes", ())]
+    unresolved = set(getattr(fit, "undetermined", ()) or ())
+    withheld = [n for n in names if n in unresolved]
+    reasons = [str(getattr(f, "message", f)) for f in flags
+               if getattr(f, "effect", "") == "undetermined"] if withheld else []
+    return withheld, reasons
+
+
 def scan_point_result(fit: Any, weight: float) -> ScanPointResult:
-    """One scan point, with its diagnostic flags and caught numerical warnings."""
+    """One scan point, with its diagnostic flags and caught numerical warnings.
+
+    A point whose central fit failed gets no parameter values (NaN; null in
+    results.json): where its minimiser stopped is not a result.
+    """
     central = fit.central
     values = _reported_values(fit)
+    failed = central_failed(fit)
     flags = tuple(getattr(fit, "flags", ()) or ())
     return ScanPointResult(
         tmin=int(fit.tmin), tmax=int(fit.tmax), form=str(fit.form), states=int(fit.states),
@@ -65,7 +102,8 @@ def scan_point_result(fit: Any, weight: float) -> ScanPointResult:
         p_value=float(central.p_value), p_value_hotelling=float(central.p_value_hotelling),
         aic=float(central.aic), weight=float(weight), converged=bool(fit.converged),
         n_refit_failed=int(fit.n_refit_failed),
-        params={name: PointEstimate(float(values[name]), float(fit.errors[name]))
+        params={name: (PointEstimate(math.nan, math.nan) if failed
+                       else PointEstimate(float(values[name]), float(fit.errors[name])))
                 for name in reported_names(fit)},
         flags=tuple(str(c) for c in getattr(fit, "flag_codes", [str(f) for f in flags])),
         flag_messages=tuple(str(getattr(f, "message", f)) for f in flags),
@@ -114,6 +152,20 @@ def _find(fits: Sequence[Any], choose: tuple[int, int, int | None]) -> Any:
                    + (f", states = {states}" if states is not None else ""))
 
 
+def _why_unusable(fits: Sequence[Any]) -> str:
+    """``3 of 3 points: at-bound 2, not converged 1`` -- why points got weight 0."""
+    counts: dict[str, int] = {}
+    for fit in fits:
+        codes = {str(c).split(":")[0] for c in getattr(fit, "flag_codes", ())}
+        degenerate = {str(getattr(f, "code", "")) for f in getattr(fit, "flags", ())
+                      if getattr(f, "effect", "") == "degenerate"}
+        shown = (codes & degenerate) or ({"not converged"} if not fit.converged else set())
+        for code in shown or {"no usable parameter"}:
+            counts[code] = counts.get(code, 0) + 1
+    listed = ", ".join(f"{code} {n}" for code, n in sorted(counts.items()))
+    return f"{len(fits)} point(s): {listed}"
+
+
 def summarise_scan(fits: Sequence[Any] | Any, *, name: str = "fit",
                    choose: tuple[int, int] | tuple[int, int, int | None] | None = None,
                    binned: Mapping[str, np.ndarray] | np.ndarray | None = None,
@@ -140,6 +192,12 @@ def summarise_scan(fits: Sequence[Any] | Any, *, name: str = "fit",
     FitResult
         With ``derived_inputs`` (for :func:`plateaufit.evaluate_derived`) and
         no warnings (those are the pipeline's, :mod:`plateaufit.pipeline.warnings`).
+        A chosen single point that is not a fit (not converged, or flagged
+        degenerate: at a bound, collapsed, ...) reports no values: its
+        parameters are NaN (null in results.json), listed in
+        ``chosen.withheld`` with the reasons, the point has weight 0, and
+        they are no input of derived quantities; so are the parameters of
+        states it does not resolve.
 
     Raises
     ------
@@ -158,15 +216,21 @@ def summarise_scan(fits: Sequence[Any] | Any, *, name: str = "fit",
     if len(fits) == 1 or choose is not None:
         point = tuple(choose) + (None,) * (3 - len(choose)) if choose is not None else None
         shown = fits[0] if point is None else _find(fits, point)
-        weights[fits.index(shown)] = 1.0
-        values = _reported_values(shown)
+        withheld, reasons = withheld_parameters(shown)
         names = reported_names(shown)
-        params = {n: ParamEstimate.of(values[n], shown.errors[n]) for n in names}
+        whole = len(withheld) == len(names)
+        # a degenerate or unconverged point has weight 0, as in an average
+        weights[fits.index(shown)] = 0.0 if whole else 1.0
+        values = _reported_values(shown)
+        params = {n: (ParamEstimate(math.nan, math.nan, math.nan, 0.0) if n in withheld
+                      else ParamEstimate.of(values[n], shown.errors[n])) for n in names}
         inputs = {n: DerivedInput(float(values[n]), shown.samples[:, j], 0.0)
-                  for j, n in enumerate(names)}
-        chosen = ChosenResult(method="single", params=params, point=_point_summary(shown, 1.0),
+                  for j, n in enumerate(names) if n not in withheld}
+        chosen = ChosenResult(method="single", params=params,
+                              point=_point_summary(shown, weights[fits.index(shown)]),
                               converged=bool(shown.converged),
-                              band=(int(shown.tmin), int(shown.tmax)))
+                              band=(int(shown.tmin), int(shown.tmax)),
+                              withheld=tuple(withheld), withheld_reasons=tuple(reasons))
     else:
         avg = None
         try:
@@ -181,8 +245,10 @@ def summarise_scan(fits: Sequence[Any] | Any, *, name: str = "fit",
                                                  avg.sys_error[n])
                     inputs[n] = DerivedInput(avg.value[n], avg.samples[n], avg.sys_error[n])
         if not params:
-            raise FitError("", "no fit of the scan converged; narrow the ranges, add priors "
-                               "on the excited states, or give start values")
+            raise FitError("", f"no point of the scan is a usable fit ({_why_unusable(fits)}),"
+                               " so there is no result; narrow the ranges, add priors on the "
+                               "excited states, give start values near the answer, or widen "
+                               "or drop bounds the fits ended on")
         weights = np.asarray(avg.weights, dtype=float)
         shown = fits[int(np.argmax(weights))]
         contributing = [f for f, w in zip(fits, weights) if w > 0]

@@ -51,7 +51,12 @@ def _fits(results: Results) -> Iterator[tuple[str, FitResult]]:
 
 def _tau_unreliable(results: Results) -> Iterator[RunWarning]:
     for name, tau in results.ensemble.tau_int.items():
-        if not tau.reliable:
+        if not (math.isfinite(tau.value) and tau.value >= 0):
+            yield RunWarning("tau-unreliable", None,
+                             f"{name}: tau_int is not estimable at any timeslice (too few "
+                             "configurations); the errors are not corrected for "
+                             "autocorrelation")
+        elif not tau.reliable:
             yield RunWarning("tau-unreliable", None,
                           f"{name}: no autocorrelation window was found at every timeslice; "
                           f"tau_int = {tau.value:.3g} is a lower bound there (the chains are "
@@ -61,6 +66,32 @@ def _tau_unreliable(results: Results) -> Iterator[RunWarning]:
 def _bin_size_capped(results: Results) -> Iterator[RunWarning]:
     for note in results.ensemble.bin_size_notes:
         yield RunWarning("bin-size-capped", None, f"binning.size: {note}")
+
+
+def _withheld_entirely(fit: FitResult) -> bool:
+    """The chosen single point is not a fit: every parameter withheld."""
+    return bool(fit.chosen.withheld) and set(fit.chosen.withheld) >= set(fit.chosen.params)
+
+
+def _chosen_withheld(results: Results) -> Iterator[RunWarning]:
+    # a chosen point that is not a fit must never read as a clean value
+    for name, fit in _fits(results):
+        if not fit.chosen.withheld:
+            continue
+        p = fit.chosen.point
+        label = f"[{p.tmin}, {p.tmax}], {p.states} state" + ("s" if p.states != 1 else "")
+        reasons = "; ".join(fit.chosen.withheld_reasons) or "it is flagged"
+        if _withheld_entirely(fit):
+            yield RunWarning("chosen-withheld", name,
+                             f"fit {name}: the chosen fit ({label}) is not a result, so no "
+                             f"values are reported (null in results.json): {reasons}. Choose "
+                             "another point, or fix the fit (bounds, priors, start values, "
+                             "range)")
+        else:
+            listed = ", ".join(fit.chosen.withheld)
+            yield RunWarning("chosen-withheld", name,
+                             f"fit {name}: {listed} of the chosen fit ({label}) are not "
+                             f"determined by the data and are not reported: {reasons}")
 
 
 def _chosen_not_converged(results: Results) -> Iterator[RunWarning]:
@@ -73,6 +104,8 @@ def _chosen_not_converged(results: Results) -> Iterator[RunWarning]:
 
 def _low_p_value(results: Results) -> Iterator[RunWarning]:
     for name, fit in _fits(results):
+        if _withheld_entirely(fit):
+            continue
         p = fit.chosen.point.p_value
         if p < LOW_P_VALUE:
             which = "highest-weight" if fit.chosen.is_average else "chosen"
@@ -138,6 +171,8 @@ def _chosen_flagged(results: Results) -> Iterator[RunWarning]:
     # analyst would question (every flagged point is listed in run.log)
     for name, fit in _fits(results):
         shown = fit.chosen_point()
+        if _withheld_entirely(fit):
+            continue
         if shown is not None and shown.flags:
             reasons = "; ".join(shown.flag_messages) or ", ".join(shown.flags)
             which = "highest-weight" if fit.chosen.is_average else "chosen"
@@ -196,6 +231,16 @@ def _matrix_ill_conditioned(results: Results) -> Iterator[RunWarning]:
                              "a smaller t0")
 
 
+def _derived_withheld(results: Results) -> Iterator[RunWarning]:
+    for name, d in results.derived.items():
+        if d.withheld_inputs:
+            yield RunWarning("derived-withheld", None,
+                             f"derived {name}: not computed (null in results.json), because "
+                             f"{', '.join(d.withheld_inputs)} "
+                             f"{'is' if len(d.withheld_inputs) == 1 else 'are'} not a result "
+                             "(see the fit's warning)")
+
+
 def _derived_dropped(results: Results) -> Iterator[RunWarning]:
     for name, d in results.derived.items():
         if d.n_dropped:
@@ -208,6 +253,8 @@ def _derived_dropped(results: Results) -> Iterator[RunWarning]:
 RULES: tuple[Rule, ...] = (
     Rule("tau-unreliable", "tau_int whose summation window was not found", _tau_unreliable),
     Rule("bin-size-capped", "automatic bin size capped to keep enough bins", _bin_size_capped),
+    Rule("chosen-withheld", "a chosen single fit that is not a fit: its values withheld",
+         _chosen_withheld),
     Rule("chosen-not-converged", "the chosen fit (or one averaged over) did not converge",
          _chosen_not_converged),
     Rule("low-p-value", f"chosen or highest-weight fit with p < {LOW_P_VALUE}", _low_p_value),
@@ -217,6 +264,8 @@ RULES: tuple[Rule, ...] = (
     Rule("strong-shrinkage", f"shrinkage intensity above {STRONG_SHRINKAGE}", _strong_shrinkage),
     Rule("chosen-flagged", "the chosen (or highest-weight) fit carries diagnostic flags",
          _chosen_flagged),
+    Rule("derived-withheld", "derived quantities of an input that is not a result",
+         _derived_withheld),
     Rule("derived-samples-dropped", "derived quantities with jackknife samples left out",
          _derived_dropped),
     Rule("matrix-crossings", "a matrix level crosses another inside its fit range",

@@ -33,12 +33,13 @@ from plateaufit.atomic import write_text
 from plateaufit.errors import DataError
 from plateaufit.pipeline.results import Results, as_float
 from plateaufit.report.matrix_section import render_matrices
-from plateaufit.report.plots import as_results, figure_png, make_all_plots, plot_plan
+from plateaufit.report.plots import as_results, figure_png, plot_plan
 from plateaufit.report.tables import (
     chosen_range_text,
     format_value_error,
     format_value_errors,
     param_names,
+    scan_table_names,
     write_tables,
 )
 from plateaufit.report.validate import check_results
@@ -179,7 +180,10 @@ def _section_data(results: Mapping[str, Any]) -> str:
             reliable = tau.get("reliable")
             flag = ("yes" if reliable else '<span class="tag">no: lower bound</span>'
                     if reliable is False else "n/a")
-            out.append(_row([_e(name), _e(_ve(tau.get("value"), tau.get("error"))),
+            shown = _ve(tau.get("value"), tau.get("error"))
+            if not _num(tau.get("value")) >= 0:    # NaN: too few configurations
+                shown, flag = "not estimable", '<span class="tag">no</span>'
+            out.append(_row([_e(name), _e(shown),
                              _e(tau.get("window", "")), _e(tau.get("t", "")), flag],
                             num=[False, True, True, True, False]))
         out.append("</table>")
@@ -244,7 +248,10 @@ def _section_results(results: Mapping[str, Any]) -> str:
             both = ("n/a" if math.isnan(v) else
                     format_value_errors(v, [abs(stat) if math.isfinite(stat) else stat,
                                             abs(sys_) if math.isfinite(sys_) else sys_]))
-            cells = [_e(pname), _e(_ve(v, tot)), _e(both), _e(_fmt(stat, ".2g")),
+            total = _ve(v, tot)
+            if pname in (chosen.get("withheld") or ()):   # see the Warnings section
+                both = total = "not a result"
+            cells = [_e(pname), _e(total), _e(both), _e(_fmt(stat, ".2g")),
                      _e(_fmt(sys_, ".2g"))]
             if has_truth:
                 cells += _truth_cells(v, tot, truth.get(pname))
@@ -496,7 +503,10 @@ def rebuild_report(out_dir: str | os.PathLike[str]) -> Path:
 
     Reads ``OUT_DIR/results.json`` and writes the scan CSV files and
     results.tex, the plots in ``OUT_DIR/plots/`` and ``OUT_DIR/report.html``,
-    without refitting.
+    without refitting. The files are written into a staging folder and moved
+    into place together (:mod:`plateaufit.run_folder`); results.json and run.log
+    are left as they are, plots of the earlier page that are not drawn again
+    are removed.
 
     Parameters
     ----------
@@ -511,32 +521,41 @@ def rebuild_report(out_dir: str | os.PathLike[str]) -> Path:
     Raises
     ------
     DataError
-        Naming results.json when it is missing, is not JSON, or lacks a
-        required key (the message says which).
+        Naming results.json when it is missing, not a regular file, not JSON,
+        or has a key missing or unusable (the message names the key path), or
+        naming the file that could not be written.
     """
-    out = Path(out_dir)
-    path = out / "results.json"
-    if not path.is_file():
-        raise DataError(str(path), "no results.json here; give the output directory of a "
-                                   "finished `plateaufit fit` run, or run the fit first")
-    try:
-        results = json.loads(path.read_text(encoding="utf-8"))
-    except UnicodeDecodeError:
-        raise DataError(str(path), "is not UTF-8 text, so not a results file; rerun "
-                                   "`plateaufit fit SPEC` to write it again") from None
-    except json.JSONDecodeError as err:
-        raise DataError(str(path), f"is not valid JSON ({err.msg} at line {err.lineno}, "
-                                   f"column {err.colno}); the file is damaged: rerun "
-                                   "`plateaufit fit SPEC` to write it again") from None
-    check_results(results, str(path))
-    write_tables(results, out)
-    figures = dict(make_all_plots(results, out))
-    calibration = _read_calibration(out)
-    if calibration is not None:
-        from plateaufit.report.calibration_plots import make_calibration_plots
+    from plateaufit.report.plots import save_figure
+    from plateaufit.report.reading import CONVERSION_ERRORS, damaged, read_results, trail_of
+    from plateaufit.run_folder import RunFolder
 
-        figures.update(make_calibration_plots(calibration, out))
-    return write_report(results, out, figures=figures, calibration=calibration)
+    out = Path(out_dir)
+    results, typed = read_results(out)
+    path = out / "results.json"
+    calibration = _read_calibration(out)
+    folder = RunFolder(out, key=str(out), inputs=[path])
+    # before drawing anything: nothing in the way of the files it writes
+    folder.check_outputs([*scan_table_names(results.get("fits") or {}), "results.tex",
+                          "report.html"], plots=True)
+    keep = ("results.json", "run.log") + (("calibration.json",) if calibration is not None
+                                          else ())
+    with folder.writing(completion=None, keep=keep) as staging:
+        with damaged(path, trail_of(results)):
+            write_tables(results, staging)
+            figures: dict[str, list[Path]] = {}
+            for item in plot_plan(typed):
+                try:
+                    figures[item.key] = save_figure(item.draw(), staging / "plots" / item.key)
+                except CONVERSION_ERRORS as exc:   # a value the plot cannot use: damaged
+                    raise DataError(str(path), f"cannot draw the plot {item.key} ({item.caption})"
+                                    f" from it: {type(exc).__name__}: {exc}; the file is damaged "
+                                    "or from another layout: rerun `plateaufit fit SPEC`") from None
+            if calibration is not None:
+                from plateaufit.report.calibration_plots import make_calibration_plots
+
+                figures.update(make_calibration_plots(calibration, staging))
+            write_report(results, staging, figures=figures, calibration=calibration)
+    return out / "report.html"
 
 
 def _read_calibration(out: Path) -> Any:

@@ -41,8 +41,8 @@ import io
 import math
 import os
 import re
-from collections.abc import Mapping, Sequence
-from decimal import ROUND_HALF_UP, Decimal
+from collections.abc import Iterable, Mapping, Sequence
+from decimal import ROUND_HALF_UP, Decimal, localcontext
 from pathlib import Path
 from typing import Any
 
@@ -59,10 +59,14 @@ __all__ = [
     "param_names",
     "file_stem",
     "write_tables",
+    "scan_table_names",
 ]
 
 _SCI_LOW = -3   # exponents below this use scientific notation
 _SCI_HIGH = 5   # exponents at or above this use scientific notation
+#: decimal digits enough for any double's value rounded at any double's error place
+#: (exponents -324..308), so quantizing never runs out of precision
+_DECIMAL_PRECISION = 700
 
 
 def _dec(x: float) -> Decimal:
@@ -150,6 +154,12 @@ def format_value_errors(value: float, errors: Sequence[float], digits: int = 2) 
             return "(0)" if e == 0.0 else f"({e:.{digits}g})"
         return f"{value:.6g}" + "".join(tag(e) for e in errs)
 
+    with localcontext() as ctx:
+        ctx.prec = _DECIMAL_PRECISION
+        return _format_finite(value, errs, digits)
+
+
+def _format_finite(value: float, errs: list[float], digits: int) -> str:
     d_errs = [_dec(e) for e in errs]
     largest = max(d_errs)
     q = _error_place(largest, digits)
@@ -416,8 +426,11 @@ def latex_results_table(results: Mapping[str, Any]) -> str:
             stat = _num(entry.get("stat_error", entry.get("error")))
             sys_ = _num(entry.get("sys_error", 0.0))
             total = _num(entry.get("error"))
-            both = _latex_number(_safe_format(value, [stat, sys_]))
-            tot = _latex_number(_safe_format(value, [total]))
+            if pname in (chosen.get("withheld") or ()) or not math.isfinite(value):
+                both = tot = "not a result" if pname in (chosen.get("withheld") or ()) else "---"
+            else:
+                both = _latex_number(_safe_format(value, [stat, sys_]))
+                tot = _latex_number(_safe_format(value, [total]))
             cells = [latex_escape(fit_name) if i == 0 else "", latex_escape(pname), both, tot,
                      method if i == 0 else "", range_text if i == 0 else ""]
             lines.append(" & ".join(cells) + " \\\\")
@@ -429,9 +442,10 @@ def latex_results_table(results: Mapping[str, Any]) -> str:
         stat = _num(entry.get("stat_error", entry.get("error")))
         sys_ = _num(entry.get("sys_error", 0.0))
         total = _num(entry.get("error"))
-        cells = ["derived" if i == 0 else "", latex_escape(name),
-                 _latex_number(_safe_format(value, [stat, sys_])),
-                 _latex_number(_safe_format(value, [total])), "jackknife",
+        shown = ([_latex_number(_safe_format(value, [stat, sys_])),
+                  _latex_number(_safe_format(value, [total]))] if math.isfinite(value)
+                 else ["---", "---"])
+        cells = ["derived" if i == 0 else "", latex_escape(name), *shown, "jackknife",
                  f"\\texttt{{{latex_escape(entry.get('expression', ''))}}}"]
         lines.append(" & ".join(cells) + " \\\\")
     lines += ["\\bottomrule", "\\end{tabular}"]
@@ -475,14 +489,25 @@ def write_tables(results: Results | Mapping[str, Any],
     if isinstance(results, Results):
         results = results.to_dict()
     out = Path(out_dir)
-    written: list[Path] = []
-    used: set[str] = set()
-    for fit_name, fit in (results.get("fits") or {}).items():
+    fits = results.get("fits") or {}
+    written = [write_text(out / name, scan_table_csv(fit))
+               for name, fit in zip(scan_table_names(fits), fits.values())]
+    written.append(write_text(out / "results.tex", latex_results_table(results)))
+    return written
+
+
+def scan_table_names(fit_names: Iterable[str]) -> list[str]:
+    """The file names of the scan tables of fits ``fit_names``, in order: ``scan_FIT.csv``.
+
+    ``FIT`` is :func:`file_stem` of the name; clashes get ``-2``, ``-3``, ...
+    (what :func:`write_tables` writes, so a run can check them before fitting).
+    """
+    names, used = [], set()
+    for fit_name in fit_names:
         stem, i = file_stem(fit_name), 2
         base = stem
         while stem in used:
             stem, i = f"{base}-{i}", i + 1
         used.add(stem)
-        written.append(write_text(out / f"scan_{stem}.csv", scan_table_csv(fit)))
-    written.append(write_text(out / "results.tex", latex_results_table(results)))
-    return written
+        names.append(f"scan_{stem}.csv")
+    return names

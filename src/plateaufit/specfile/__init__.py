@@ -40,7 +40,7 @@ from plateaufit.specfile.models import (
     OutputSpec,
     Spec,
 )
-from plateaufit.specfile.parsers import scan_values
+from plateaufit.specfile.parsers import KeyedValueError, scan_values
 from plateaufit.specfile.rules import ModelRules
 from plateaufit.specfile.yaml_io import read_yaml
 
@@ -49,6 +49,41 @@ __all__ = [
     "ChooseSpec", "FitSpec", "OutputSpec", "MatrixSpec", "ModelRules", "load_spec", "validate_spec",
     "key_path", "scan_values", "FORMS", "SHRINKAGE_METHODS", "TRUTH_DERIVED_KEY",
 ]
+
+
+#: the model classes, whose names pydantic puts into the key path of a union's errors
+_MODEL_NAMES = frozenset(m.__name__ for m in (
+    Spec, EnsembleSpec, ObservableSpec, BinningSpec, CovarianceSpec, FormulaSpec, ChooseSpec,
+    FitSpec, OutputSpec))
+
+
+def _is_union_tag(part: Any) -> bool:
+    return isinstance(part, str) and (part in _MODEL_NAMES or part.startswith("literal["))
+
+
+def _without_union_tags(errors: list[dict]) -> list[dict]:
+    """pydantic's errors with the union members' tags taken out of the key paths.
+
+    A value of a union (``choose: average | {tmin, tmax, states}``) that matches no
+    member gets one error per member, their key paths tagged with the member
+    (``choose.ChooseSpec.tmax``, ``choose.literal['average']``). The user's key
+    path has no such parts; and where the mapping member has errors, those are
+    the ones to report (the value is a mapping, so "not 'average'" says nothing).
+    """
+    cleaned = []
+    for err in errors:
+        tags = [p for p in err["loc"] if _is_union_tag(p)]
+        loc = tuple(p for p in err["loc"] if not _is_union_tag(p))
+        cleaned.append(({**err, "loc": loc}, tags))
+    mapping_locs = [e["loc"] for e, tags in cleaned if any(t in _MODEL_NAMES for t in tags)]
+    out = []
+    for err, tags in cleaned:
+        literal_only = bool(tags) and all(t.startswith("literal[") for t in tags)
+        at = err["loc"]
+        if literal_only and any(loc[:len(at)] == at for loc in mapping_locs):
+            continue   # "not 'average'" said of a mapping whose own errors are listed
+        out.append(err)
+    return out
 
 
 def load_spec(path: str | os.PathLike[str], *, rules: ModelRules) -> Spec:
@@ -116,9 +151,13 @@ def validate_spec(data: Any, *, rules: ModelRules, path: str | os.PathLike[str] 
         spec = Spec.model_validate(data)
     except ValidationError as exc:
         # an unknown key is usually a misspelt one: report it before the "missing" it causes
-        errs = sorted(exc.errors(), key=lambda e: e["type"] != "extra_forbidden")
+        errs = sorted(_without_union_tags(exc.errors()),
+                      key=lambda e: e["type"] != "extra_forbidden")
         first = errs[0]
         loc = tuple(part for part in first["loc"] if part != "[key]")
+        cause = (first.get("ctx") or {}).get("error")
+        if isinstance(cause, KeyedValueError):   # a problem of one entry of a mapping
+            loc += cause.key
         more = len(errs) - 1
         suffix = f" ({more} more problem{'s' if more > 1 else ''} in the spec)" if more else ""
         raise errors(loc, pydantic_message(first) + suffix) from None

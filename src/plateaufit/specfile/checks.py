@@ -9,6 +9,8 @@ through :class:`~plateaufit.specfile.rules.ModelRules`.
 
 from __future__ import annotations
 
+import ast
+import math
 import re
 
 from plateaufit.data.loaders import FORMATS, SUFFIXES
@@ -52,14 +54,32 @@ def cross_check(spec: Spec, rules: ModelRules, err: SpecErrors) -> None:
         raise err(("output", "dir"), f"{resolved} exists and is not a directory; choose "
                   "another output.dir")
     _check_derived(spec, rules, names, err)
-    for fit_name in spec.truth:
+    _check_truth(spec, names, err)
+
+
+def _check_truth(spec: Spec, names: dict[str, int], err: SpecErrors) -> None:
+    """``truth.FIT.PARAM``: a fit of the spec and one of its parameters, a finite value."""
+    for fit_name, values in spec.truth.items():
+        for param, value in values.items():
+            if not math.isfinite(value):
+                raise err(("truth", fit_name, param), f"the truth of {param} must be a finite "
+                          f"number, got {value!r}")
         if fit_name == TRUTH_DERIVED_KEY and fit_name not in names:
             _check_derived_truth(spec, err)
             continue
         if fit_name not in names:
+            choices = list(names) + ([TRUTH_DERIVED_KEY] if spec.derived else [])
             raise err(("truth", fit_name), f"no fit named {fit_name!r}; truth: lists values by "
                       f"fit name ({', '.join(names) or 'no fits defined'}) and, under "
-                      f"{TRUTH_DERIVED_KEY}:, by derived quantity")
+                      f"{TRUTH_DERIVED_KEY}:, by derived quantity"
+                      f"{suggest_name(fit_name, choices)}")
+        fit = spec.fits[names[fit_name]]
+        known = spec.reported_names(fit)
+        for param in values:
+            if param not in known:
+                raise err(("truth", fit_name, param), f"fit {fit_name!r} has no parameter "
+                          f"{param!r}; its parameters are {', '.join(known)}"
+                          f"{suggest_name(param, known)}")
 
 
 def _check_derived(spec: Spec, rules: ModelRules, fit_index: dict[str, int],
@@ -87,6 +107,12 @@ def _check_derived(spec: Spec, rules: ModelRules, fit_index: dict[str, int],
             rules.check_derived(expression, known)
         except ValueError as exc:
             raise err(key, str(exc)) from None
+
+
+def _names_in(expression: str) -> set[str]:
+    """The names an expression uses (it has passed the formula check: valid syntax)."""
+    tree = ast.parse(expression.strip(), mode="eval")
+    return {node.id for node in ast.walk(tree) if isinstance(node, ast.Name)}
 
 
 def _check_derived_truth(spec: Spec, err: SpecErrors) -> None:
@@ -134,7 +160,7 @@ def _check_fit(spec: Spec, rules: ModelRules, i: int, fit: FitSpec, err: SpecErr
     for j, name in enumerate(fit.observables):
         if name not in spec.observables:
             raise err(key + ("observables", j), f"unknown observable {name!r}; the observables "
-                      f"are {', '.join(known)}")
+                      f"are {', '.join(known)}{suggest_name(name, known)}")
         if name in fit.observables[:j]:
             raise err(key + ("observables", j), f"observable {name!r} is listed twice; list "
                       "each once")
@@ -152,6 +178,13 @@ def _check_fit(spec: Spec, rules: ModelRules, i: int, fit: FitSpec, err: SpecErr
             rules.check_formula(fit.formula.expression, list(fit.formula.params))
         except ValueError as exc:
             raise err(key + ("formula", "expression"), str(exc)) from None
+        used = _names_in(fit.formula.expression)
+        for param in fit.formula.params:
+            if param not in used:
+                raise err(key + ("formula", "params", param), f"the expression "
+                          f"{fit.formula.expression!r} does not use the parameter {param!r}, so "
+                          "the data cannot determine it (it would be reported as its start "
+                          "value); use it in the expression or remove it from params")
     elif fit.formula is not None:
         raise err(key + ("formula",), f"formula: applies to model: formula only, but the model "
                   f"is {fit.model}; remove it or set model: formula")

@@ -44,7 +44,8 @@ class SpecErrors:
 
 def suggest_name(name: str, choices: list[str]) -> str:
     """``; did you mean 'x'?`` for the closest of ``choices``, else ''."""
-    close = difflib.get_close_matches(name, choices, n=1)
+    same_letters = [c for c in choices if c.lower() == name.lower()]
+    close = same_letters or difflib.get_close_matches(name, choices, n=1)
     return f"; did you mean {close[0]!r}?" if close else ""
 
 
@@ -124,6 +125,8 @@ def pydantic_message(err: dict) -> str:
         return f"{simple[kind]}, got {_describe(value)}"
     if kind in ("greater_than_equal", "greater_than", "less_than_equal", "less_than"):
         return f"{err['msg'].replace('Input should be', 'must be')}, got {_describe(value)}"
+    if kind == "invalid_key":
+        return f"keys must be text, got {_describe(loc[-1] if loc else value)}"
     if kind == "too_short":
         return f"must not be empty, got {_describe(value)}"
     return f"{err['msg']} (got {_describe(value)})"

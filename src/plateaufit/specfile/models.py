@@ -19,16 +19,22 @@ from pydantic import (BaseModel, ConfigDict, Field, PrivateAttr, ValidationInfo,
 from plateaufit.data.loaders import format_from_suffix
 from plateaufit.data.transforms import folded_extent
 from plateaufit.specfile.matrices import MatrixSpec, fit_t0
-from plateaufit.specfile.parsers import mapping, number, pair, scan_values, time_range, whole
+from plateaufit.specfile.parsers import (MAX_TIMESLICE, mapping, number, pair, per_key,
+                                         scan_values, time_range, whole)
 from plateaufit.specfile.rules import ModelRules
 
 __all__ = ["Spec", "EnsembleSpec", "ObservableSpec", "BinningSpec", "CovarianceSpec",
            "FormulaSpec", "ChooseSpec", "FitSpec", "OutputSpec", "MatrixSpec", "SHRINKAGE_METHODS",
-           "FORMS"]
+           "FORMS", "MAX_STATES", "MAX_TIME_EXTENT"]
 
 SHRINKAGE_METHODS: tuple[str, ...] = ("none", "ledoit-wolf", "oas")
 #: the values of a fit's ``model:`` key (the model's form)
 FORMS: tuple[str, ...] = ("exp", "cosh", "sinh", "formula")
+#: most states (or oscillating states) a fit may have: far more than data resolve, and
+#: small enough that a typo (states: 1000000) is refused instead of exhausting memory
+MAX_STATES = 20
+#: largest time extent (and timeslice) a spec may name; lattices have a few hundred
+MAX_TIME_EXTENT = MAX_TIMESLICE
 
 
 class _Strict(BaseModel):
@@ -39,7 +45,7 @@ class EnsembleSpec(_Strict):
     """``ensemble:`` -- the name, ``T``, and optional stream sizes in file order."""
 
     name: str
-    time_extent: int = Field(ge=2)
+    time_extent: int = Field(ge=2, le=MAX_TIME_EXTENT)
     streams: list[int] | None = None
 
     @field_validator("streams", mode="plain")
@@ -138,8 +144,9 @@ class CovarianceSpec(_Strict):
             return value
         if isinstance(value, bool) or not isinstance(value, (int, float)):
             raise ValueError(f"shrinkage must be {allowed}, got {value!r}")
-        if not 0.0 <= float(value) <= 1.0:
-            raise ValueError(f"shrinkage {value} is outside [0, 1]; use {allowed}")
+        if not (isinstance(value, float) or abs(value) <= 1) or not 0.0 <= float(value) <= 1.0:
+            shown = str(value) if len(str(value)) <= 20 else f"{str(value)[:17]}..."
+            raise ValueError(f"shrinkage {shown} is outside [0, 1]; use {allowed}")
         return float(value)
 
     @field_validator("eigenvalue_floor", mode="plain")
@@ -166,7 +173,8 @@ class FormulaSpec(_Strict):
         if not isinstance(value, dict) or not value:
             raise ValueError("write params as a mapping NAME: starting value, e.g. "
                              f"{{a: 1.0, m: 0.5}}; got {value!r}")
-        return {str(k): number(v, f"the start of {k}") for k, v in value.items()}
+        return per_key({str(k): v for k, v in value.items()},
+                       lambda k, v: number(v, f"the start of {k}"))
 
 
 class ChooseSpec(_Strict):
@@ -175,6 +183,7 @@ class ChooseSpec(_Strict):
     tmin: int
     tmax: int
     states: int | None = None
+
 
 
 class FitSpec(_Strict):
@@ -189,7 +198,7 @@ class FitSpec(_Strict):
     observables: list[str] = Field(default_factory=list)
     model: Literal["exp", "cosh", "sinh", "formula"]
     states: int | list[int] = 1
-    oscillating: int = Field(0, ge=0)
+    oscillating: int = Field(0, ge=0, le=MAX_STATES)
     constant: bool = False
     factorised: bool = False
     formula: FormulaSpec | None = None
@@ -211,13 +220,27 @@ class FitSpec(_Strict):
             counts = [whole(v, "each state count") for v in value]
             if any(c < 1 for c in counts):
                 raise ValueError(f"state counts must be at least 1, got {counts}")
+            if any(c > MAX_STATES for c in counts):
+                raise ValueError(f"state counts must be at most {MAX_STATES}, got "
+                                 f"{[c if c <= MAX_STATES else '...' for c in counts]}")
             if len(set(counts)) != len(counts):
                 raise ValueError(f"state counts are repeated in {counts}; list each once")
             return counts
         n = whole(value, "states")
         if n < 1:
             raise ValueError(f"states must be at least 1, got {n}")
+        if n > MAX_STATES:
+            raise ValueError(f"states must be at most {MAX_STATES} (no data resolve more), got "
+                             f"{str(n)[:20]}")
         return n
+
+    @field_validator("choose", mode="before")
+    @classmethod
+    def _choose(cls, value: Any) -> Any:
+        if value == "average" or isinstance(value, dict):
+            return value
+        raise ValueError("write choose as average (the default) or as one point "
+                         f"{{tmin: .., tmax: .., states: ..}}, got {value!r}")
 
     @field_validator("tmin", mode="plain")
     @classmethod
@@ -233,19 +256,19 @@ class FitSpec(_Strict):
     @classmethod
     def _priors(cls, value: Any) -> dict[str, list[float]]:
         out = mapping(value, "priors", "PARAM: [mean, width], e.g. E0: [0.5, 0.1]")
-        return {k: pair(v, k, ("mean", "width")) for k, v in out.items()}
+        return per_key(out, lambda k, v: pair(v, k, ("mean", "width")))
 
     @field_validator("bounds", mode="plain")
     @classmethod
     def _bounds(cls, value: Any) -> dict[str, list[float]]:
         out = mapping(value, "bounds", "PARAM: [lo, hi], e.g. E0: [0.0, 2.0]")
-        return {k: pair(v, k, ("lo", "hi")) for k, v in out.items()}
+        return per_key(out, lambda k, v: pair(v, k, ("lo", "hi"), infinite=True))
 
     @field_validator("start", mode="plain")
     @classmethod
     def _start(cls, value: Any) -> dict[str, float]:
         out = mapping(value, "start", "PARAM: value, e.g. E0: 0.5")
-        return {k: number(v, f"the start of {k}") for k, v in out.items()}
+        return per_key(out, lambda k, v: number(v, f"the start of {k}"))
 
     @property
     def form(self) -> str:

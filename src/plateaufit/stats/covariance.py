@@ -324,13 +324,18 @@ def _apply_floor(m: np.ndarray, floor: float) -> np.ndarray:
     return r2 * (d[..., :, None] * d[..., None, :])
 
 
-def _singular_error(n_bins: int, p: int, detail: str) -> FitError:
-    return FitError(
-        "",
-        f"the covariance of the mean of {p} points from {n_bins} bins is singular ({detail}); "
-        "use shrinkage 'ledoit-wolf', fewer timeslices, or more bins "
-        "(a smaller bin size)",
-    )
+def _singular_error(n_bins: int, p: int, detail: str, method: str | float | None = None,
+                    intensity: float = 0.0) -> FitError:
+    """The error of a singular covariance, with advice that fits the shrinkage in use."""
+    if method == "none" or method is None:
+        advice = "use shrinkage 'ledoit-wolf', fewer timeslices, or more bins"
+    elif isinstance(method, str) and not intensity > 0:   # an estimate that came out 0
+        advice = (f"the {method} estimate of the shrinkage intensity is 0 here, so give a fixed "
+                  "shrinkage (a number in (0, 1]), use fewer timeslices, or more bins")
+    else:
+        advice = "use a larger (fixed) shrinkage, fewer timeslices, or more bins"
+    return FitError("", f"the covariance of the mean of {p} points from {n_bins} bins is "
+                    f"singular ({detail}); {advice} (a smaller bin size)")
 
 
 def _is_singular(eig_desc: np.ndarray) -> bool:
@@ -407,7 +412,8 @@ def covariance_of_mean(
         else:
             lam = float(_oas_from_emp(emp, n))
     if lam == 0.0 and n <= p:
-        raise _singular_error(n, p, "no shrinkage and no more bins than points")
+        what = "no shrinkage" if method == "none" else "shrinkage intensity 0"
+        raise _singular_error(n, p, f"{what} and no more bins than points", method)
 
     matrix = _apply_target(raw, lam, target) if lam > 0 else raw.copy()
     if floor is not None:
@@ -415,7 +421,8 @@ def covariance_of_mean(
     eig_raw = np.linalg.eigvalsh(_correlation(raw))[::-1]
     eig = np.linalg.eigvalsh(_correlation(matrix))[::-1]
     if _is_singular(eig):
-        raise _singular_error(n, p, f"smallest correlation eigenvalue {eig[-1]:.3g}")
+        raise _singular_error(n, p, f"smallest correlation eigenvalue {eig[-1]:.3g}", method,
+                              lam)
     return CovarianceResult(
         matrix=matrix,
         raw_matrix=raw,
@@ -586,7 +593,9 @@ def per_sample_covariances(
         else:
             lam = _oas_from_emp(emp, m)
     if np.any(lam == 0.0) and m <= p:
-        raise _singular_error(m, p, "no shrinkage and no more bins than points in a delete-one subset")
+        what = "no shrinkage" if method == "none" else "shrinkage intensity 0"
+        raise _singular_error(m, p, f"{what} and no more bins than points in a delete-one "
+                              "subset", method)
 
     out = _apply_target(cov, lam, target)
     if floor is not None:
@@ -596,7 +605,8 @@ def per_sample_covariances(
         eig = np.linalg.eigvalsh(_correlation(out[zero]))[:, ::-1]
         for k, i in enumerate(zero):
             if _is_singular(eig[k]):
-                raise _singular_error(m, p, f"delete-one subset {i}, smallest correlation eigenvalue {eig[k, -1]:.3g}")
+                raise _singular_error(m, p, f"delete-one subset {i}, smallest correlation "
+                                      f"eigenvalue {eig[k, -1]:.3g}", method)
     if return_intensities:
         return out, np.asarray(lam, dtype=float)
     return out
