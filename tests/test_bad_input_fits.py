@@ -101,9 +101,6 @@ def test_an_average_with_no_usable_point_is_exit_2_saying_why(tmp_path, capsys):
     assert results is None and not out.exists()
 
 
-@pytest.mark.xfail(strict=True, reason="fit core (fit/diagnostics.py): a point whose model "
-                   "vanishes on the data (A0 ~ 1e-30 +- 0, E0 ~ 1700) counts as converged and "
-                   "unflagged, so the average publishes it; reported to the lead")
 def test_a_scan_point_whose_model_vanishes_is_not_averaged(tmp_path, capsys):
     spec = invented_spec()
     spec["fits"] = [dict(spec["fits"][0], start={"E0": -5.0})]
@@ -114,9 +111,6 @@ def test_a_scan_point_whose_model_vanishes_is_not_averaged(tmp_path, capsys):
     assert e0 is None or abs(e0 - 0.42) < 0.01, e0
 
 
-@pytest.mark.xfail(strict=True, reason="fit core (fit/diagnostics.py, fit/central.py): a formula "
-                   "fit started far away (m = 40) ends 'converged' and unflagged at a = -1.6e65, "
-                   "m = 6.3e65 where its model vanishes on the data; reported to the lead")
 def test_a_formula_fit_whose_model_vanishes_is_not_a_result(tmp_path, capsys):
     formula = {"expression": "a * (exp(-m * t) + exp(-m * (T - t)))",
                "params": {"a": 1.0, "m": 40.0}}

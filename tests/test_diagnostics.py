@@ -119,6 +119,13 @@ def test_a_prior_that_determines_its_parameter_is_reported():
     assert diagnose(**_clean(priors={"E1": (0.8, 0.5)})) == ()
 
 
+def test_a_model_that_vanishes_on_the_data_is_degenerate():
+    # a minimiser that ran off to E0 ~ 1700 with A0 ~ 1e-30: chi2 flat, model zero
+    flags = diagnose(**_clean(model_scale=(1e-30, 0.8)))
+    assert _codes(flags) == ["model-vanishes"] and is_degenerate(flags)
+    assert diagnose(**_clean(model_scale=(0.79, 0.8))) == ()
+
+
 def test_flags_print_as_short_codes():
     assert str(Flag("ground-collapsed", "x", ("E0",))) == "ground-collapsed:E0"
     assert str(Flag("central-failed", "x")) == "central-failed"

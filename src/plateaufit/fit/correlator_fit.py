@@ -179,7 +179,8 @@ def refit_range(problem: RangeProblem, central: CentralFit) -> CorrelatorFit:
     early = diagnose(names=model.reported_names, states=model.states,
                      values=central.reported, errors=central.errors,
                      curvature_errors=central.errors, converged=central.converged,
-                     at_bound=central.at_bound, oscillating=model.oscillating)
+                     at_bound=central.at_bound, oscillating=model.oscillating,
+                     model_scale=_model_scale(model, central.theta, problem.y))
     hopeless = is_degenerate(early)
     kwargs = dict(priors=problem.priors, bounds=problem.bounds, engine=problem.engine,
                   tol=problem.tol, fallback=not hopeless,
@@ -210,7 +211,8 @@ def refit_range(problem: RangeProblem, central: CentralFit) -> CorrelatorFit:
                      at_bound=central.at_bound, n_refit_failed=n_failed,
                      n_samples=samples.shape[0], priors=problem.priors,
                      effective_masses=problem.effective_masses,
-                     oscillating=model.oscillating, state_signals=signals)
+                     oscillating=model.oscillating, state_signals=signals,
+                     model_scale=_model_scale(model, central.theta, problem.y))
     return CorrelatorFit(
         model=model, tmin=problem.tmin, tmax=problem.tmax, states=problem.states,
         form=problem.form, central=central, samples=samples, errors=errors,
@@ -219,6 +221,15 @@ def refit_range(problem: RangeProblem, central: CentralFit) -> CorrelatorFit:
         n_refit_failed=n_failed, param_covariance=pcov, n_fallback=refits.n_fallback,
         engine=refits.engine, observables=problem.observables, n_bins=problem.n_bins,
         per_sample=problem.per_sample, flags=flags)
+
+
+def _model_scale(model: CorrelatorModel, theta: np.ndarray, y: np.ndarray
+                 ) -> tuple[float, float]:
+    """(largest |model|, largest |data|) over the fit's points."""
+    with np.errstate(all="ignore"):
+        f = np.asarray(model.predict(theta), dtype=float)
+    f_max = float(np.max(np.abs(f))) if np.all(np.isfinite(f)) else float("nan")
+    return f_max, float(np.max(np.abs(y)))
 
 
 def state_signals(model: CorrelatorModel, theta: np.ndarray, theta_samples: np.ndarray

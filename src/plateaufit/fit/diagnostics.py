@@ -13,6 +13,11 @@ Codes (thresholds are module constants):
 
 ``central-failed`` (degenerate)
     The central fit did not reach a minimum.
+``model-vanishes`` (degenerate)
+    The fitted model is at most :data:`VANISHING` of the data everywhere in
+    the range: a minimiser that ran off to where the model is zero (a huge
+    energy, a vanishing amplitude) describes none of the data, however flat
+    its chi2 is there.
 ``refits-failed`` (degenerate)
     Some jackknife refits did not converge; a jackknife error needs every
     sample.
@@ -61,7 +66,7 @@ from typing import Any
 import numpy as np
 
 __all__ = ["Flag", "diagnose", "is_degenerate", "undetermined_parameters", "FLAG_CODES",
-           "ZERO_SIGMAS", "PLATEAU_SIGMAS", "PLATEAU_FRACTION", "WIDTH_RATIO", "PRIOR_DOMINANCE"]
+           "ZERO_SIGMAS", "PLATEAU_SIGMAS", "PLATEAU_FRACTION", "VANISHING", "WIDTH_RATIO", "PRIOR_DOMINANCE"]
 
 #: An amplitude within this many errors of zero is compatible with zero
 #: (common practice: a 2 sigma band).
@@ -79,6 +84,9 @@ PLATEAU_FRACTION = 0.1
 #: of per cent; a factor this large means the refits did not sample one minimum
 #: (common practice).
 WIDTH_RATIO = 3.0
+#: A model no larger than this fraction of the data at every point describes
+#: none of them (common practice).
+VANISHING = 1e-3
 #: Posterior error / prior width at or above which the prior dominates: with
 #: Gaussian data and prior the ratio is 1/sqrt(1 + w^2/sigma_data^2), so 0.75
 #: means the data constrain the parameter less well than the prior does.
@@ -87,6 +95,7 @@ PRIOR_DOMINANCE = 0.75
 #: code -> (effect, meaning); effect is "degenerate", "undetermined" or "info"
 FLAG_CODES: dict[str, tuple[str, str]] = {
     "central-failed": ("degenerate", "the central fit did not reach a minimum"),
+    "model-vanishes": ("degenerate", "the fitted model is zero on the data"),
     "refits-failed": ("degenerate", "jackknife refits did not converge"),
     "at-bound": ("degenerate", "a parameter ended on a bound"),
     "ground-collapsed": ("degenerate", "the ground state collapsed"),
@@ -168,8 +177,8 @@ def diagnose(*, names: Sequence[str], states: int, values: Mapping[str, float],
              priors: Mapping[str, Any] | None = None,
              effective_masses: Sequence[tuple[np.ndarray, np.ndarray]] = (),
              oscillating: int = 0,
-             state_signals: Mapping[int, Sequence[tuple[float, float]]] | None = None
-             ) -> tuple[Flag, ...]:
+             state_signals: Mapping[int, Sequence[tuple[float, float]]] | None = None,
+             model_scale: tuple[float, float] | None = None) -> tuple[Flag, ...]:
     """All flags of one fit.
 
     Parameters
@@ -209,6 +218,10 @@ def diagnose(*, names: Sequence[str], states: int, values: Mapping[str, float],
         values with the amplitude following, so that nothing of the state
         reaches the data).
 
+    model_scale : (float, float), optional
+        The largest ``|model|`` and the largest ``|data|`` over the fit's points
+        (the ``model-vanishes`` test).
+
     Returns
     -------
     tuple of Flag
@@ -219,6 +232,13 @@ def diagnose(*, names: Sequence[str], states: int, values: Mapping[str, float],
     if not converged:
         flags.append(Flag("central-failed", f"the central fit did not reach a minimum"
                                             f"{': ' + central_message if central_message else ''}"))
+    if model_scale is not None:
+        f_max, y_max = model_scale
+        if not f_max > VANISHING * y_max:
+            flags.append(Flag("model-vanishes", f"the fitted model is at most {f_max:.3g} where "
+                                                f"the data reach {y_max:.3g}: it describes none "
+                                                "of them (a parameter ran away); give start "
+                                                "values or priors"))
     if n_refit_failed:
         flags.append(Flag("refits-failed", f"{n_refit_failed} of {n_samples} jackknife refits "
                                            "did not converge"))
