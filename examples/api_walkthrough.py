@@ -180,8 +180,10 @@ fits = pf.scan({"kestrel": binned}, tmin=[3, 7, 2], tmax=TMAX, states=[1, 2], fo
                time_extent=T)
 central = np.array([[f.central.reported["E0"]] for f in fits])
 samples = np.stack([f.samples[:, [f.names.index("E0")]] for f in fits])
+# a point enters the average when it converged and no diagnostic flag makes it
+# degenerate (fit.flags: a collapsed ground state, a bound, wandering refits, ...)
 avg = pf.model_average(central, samples, [f.central.aic for f in fits],
-                       [f.converged for f in fits], ["E0"])
+                       [f.converged and not f.degenerate for f in fits], ["E0"])
 print("scan: states tmin tmax   chi2/dof   AIC     weight  E0")
 for f, w in zip(fits, avg.weights):
     print(f"      {f.states:6d} {f.tmin:4d} {f.tmax:4d} {f.central.chi2:6.1f}/{f.central.dof:<3d} "

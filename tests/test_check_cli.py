@@ -318,3 +318,23 @@ def test_check_fails_exactly_where_fit_would(capsys, project, tmp_path):
     assert_user_error(code, out, err, "fits[0]", "tmin=0, tmax=4", "singular")
     assert err.strip() == fit_err
     assert not (tmp_path / "out" / "results.json").exists()
+
+
+@pytest.mark.slow
+def test_check_into_a_pipe_closed_early_is_quiet(project):
+    # `plateaufit check SPEC | head -1`: the reader goes away; no traceback, the status a
+    # shell gives a writer killed by SIGPIPE (141)
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    directory, data = project
+    path = directory / "spec.yaml"
+    path.write_text(yaml.safe_dump(data, sort_keys=False))
+    exe = Path(sys.executable).with_name("plateaufit")
+    proc = subprocess.Popen([str(exe), "check", str(path)], stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE)
+    proc.stdout.close()                       # the reader leaves before anything is read
+    err = proc.stderr.read().decode()
+    assert proc.wait(timeout=120) in (0, 141)
+    assert "Traceback" not in err and "BrokenPipeError" not in err, err

@@ -112,6 +112,13 @@ def test_refits_far_wider_or_narrower_than_the_curvature_are_degenerate():
     assert diagnose(**_clean(errors={"E0": 2e-4}, priors={"E1": (0.8, 10.0)})) == ()
 
 
+def test_a_misfit_is_not_judged_by_the_spread_of_its_refits():
+    # chi2/dof = 9: the model does not describe the data, its refits swing with the
+    # (per-sample) weighting; the AIC already discounts it, the width test says nothing
+    assert diagnose(**_clean(errors={"E0": 4e-3}, chi2_per_dof=9.0)) == ()
+    assert _codes(diagnose(**_clean(errors={"E0": 4e-3}, chi2_per_dof=1.1))) == ["refits-wide"]
+
+
 def test_a_prior_that_determines_its_parameter_is_reported():
     flags = diagnose(**_clean(curvature_errors={"E1": 0.45}, errors={"E1": 0.45},
                               priors={"E1": (0.8, 0.5)}))

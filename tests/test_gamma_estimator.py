@@ -127,7 +127,8 @@ def test_estimator_key_reaches_the_fit(tmp_path, monkeypatch):
     est = gamma_covariance(raw[:, lo:hi + 1], np.repeat(np.arange(len(STREAMS)), STREAMS))
     full = np.full((raw.shape[1],) * 2, np.nan)
     full[lo:hi + 1, lo:hi + 1] = est.matrix
-    binned = folded_binned(tmp_path, "eta", results["ensemble"]["bin_size"])
+    binned = folded_binned(tmp_path, "eta", results["ensemble"]["bin_size"],
+                           results["ensemble"]["binning_correction"])
     fit = fit_correlator({"eta": binned}, form="cosh", states=1, tmin=lo, tmax=hi,
                          time_extent=T, covariance_matrix=full)
     chosen = results["fits"]["eta"]["chosen"]["params"]

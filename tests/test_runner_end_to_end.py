@@ -120,12 +120,17 @@ def write_invented_run(directory: Path, spec: dict[str, Any] | None = None) -> P
     return write_spec(directory, invented_spec() if spec is None else spec)
 
 
-def folded_binned(directory: Path, name: str, bin_size: int) -> np.ndarray:
-    """What the runner should fit, rebuilt by hand: load, fold, bin within streams."""
+def folded_binned(directory: Path, name: str, bin_size: int,
+                  correction: float = 1.0) -> np.ndarray:
+    """What the runner should fit, rebuilt by hand: load, fold, bin within streams, and
+    scale the bins about their mean by the run's binning correction (binning.correction,
+    ``results["ensemble"]["binning_correction"]``)."""
     path = directory / ("kaon.txt" if name == "kaon" else "eta.npy")
     raw = np.loadtxt(path) if path.suffix == ".txt" else np.load(path)
     streams = np.repeat(np.arange(len(STREAMS)), STREAMS)
-    return bin_samples(fold(raw, "periodic"), bin_size, streams)
+    bins = bin_samples(fold(raw, "periodic"), bin_size, streams)
+    mean = bins.mean(axis=0)
+    return mean + correction * (bins - mean)
 
 
 def _read_json(path: Path) -> dict[str, Any]:
@@ -243,7 +248,8 @@ def test_a_single_fit_range_is_reported_as_that_fit(run):
         assert entry["error"] == row["params"][name]["error"]
 
     # the same fit by hand, on the data binned with the reported bin size
-    binned = folded_binned(spec_path.parent, "eta", res["ensemble"]["bin_size"])
+    binned = folded_binned(spec_path.parent, "eta", res["ensemble"]["bin_size"],
+                           res["ensemble"]["binning_correction"])
     assert binned.shape == (res["ensemble"]["n_bins"], T // 2 + 1)
     by_hand = fit_correlator({"eta": binned}, form="cosh", states=1, tmin=4, tmax=11,
                              time_extent=T)

@@ -74,7 +74,8 @@ def _run(data_dir: Path, spec: dict[str, Any], name: str) -> dict[str, Any]:
 
 
 def _by_hand(data_dir: Path, results: dict[str, Any], **kwargs: Any):
-    binned = folded_binned(data_dir, "eta", results["ensemble"]["bin_size"])
+    binned = folded_binned(data_dir, "eta", results["ensemble"]["bin_size"],
+                           results["ensemble"]["binning_correction"])
     base = dict(form="cosh", states=1, tmin=4, tmax=11, time_extent=T)
     base.update(kwargs)
     return fit_correlator({"eta": binned}, **base), binned
@@ -115,7 +116,8 @@ def test_eigenvalue_floor_is_the_same_in_check_and_fit(data_dir) -> None:
     path = write_spec(data_dir, _eta_only(eigenvalue_floor=0.05), "floor-check.yaml")
     results = run_spec(path, data_dir / "out-floor-check", plots=False, jobs=1, progress=False)
     text = check_spec(path)
-    binned = folded_binned(data_dir, "eta", results["ensemble"]["bin_size"])
+    binned = folded_binned(data_dir, "eta", results["ensemble"]["bin_size"],
+                           results["ensemble"]["binning_correction"])
     widest = covariance_of_mean(binned[:, 4:12], eigenvalue_floor=0.05)
     assert f"{widest.condition_number:.3g} after shrinkage" in text
     assert results["fits"]["eta"]["covariance"]["condition_number"] == pytest.approx(
@@ -127,7 +129,7 @@ def test_eigenvalue_floor_is_the_same_in_check_and_fit(data_dir) -> None:
     ("shrinkage", 0.3, 0.3),
     ("shrinkage", "none", "none"),
     ("target", "identity", "identity"),
-    ("per_sample", True, True),
+    ("per_sample", False, False),      # the default is auto: per-sample with few bins
 ])
 def test_covariance_keys_reach_the_fit(data_dir, spy, key, value, kwarg) -> None:
     results = _run(data_dir, _eta_only(**{key: value}), f"cov-{key}-{value}")
@@ -137,6 +139,25 @@ def test_covariance_keys_reach_the_fit(data_dir, spy, key, value, kwarg) -> None
     _assert_same_fit(results, fit)
     default, _ = _by_hand(data_dir, results)
     assert fit.errors["E0"] != default.errors["E0"]   # the key changes the numbers
+
+
+def test_binning_correction_reaches_the_bins(data_dir) -> None:
+    # binning.correction (default true): the bins are scaled about their mean by
+    # stats.autocorr.binning_correction(largest tau_int, bin size); false leaves them
+    from plateaufit.stats.autocorr import binning_correction
+
+    on = _run(data_dir, _eta_only(), "correction-on")
+    off_spec = _eta_only()
+    off_spec["binning"] = {**off_spec.get("binning", {}), "correction": False}
+    off = _run(data_dir, off_spec, "correction-off")
+    largest = max(v["value"] for v in on["ensemble"]["tau_int"].values())
+    factor = binning_correction(largest, on["ensemble"]["bin_size"])
+    assert on["ensemble"]["binning_correction"] == pytest.approx(factor, rel=1e-12)
+    assert factor > 1 and off["ensemble"]["binning_correction"] == 1.0
+    e_on = on["fits"]["eta"]["chosen"]["params"]["E0"]
+    e_off = off["fits"]["eta"]["chosen"]["params"]["E0"]
+    assert e_on["value"] == pytest.approx(e_off["value"], rel=1e-6)      # centres unchanged
+    assert e_on["stat_error"] == pytest.approx(factor * e_off["stat_error"], rel=0.05)
 
 
 # --------------------------------------------------------------------------- binning.size

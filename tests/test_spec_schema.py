@@ -58,7 +58,8 @@ def test_good_spec_loads_with_defaults(tmp_path):
     assert fit.choose == ChooseSpec(tmin=3, tmax=8, states=1)
     assert spec.observables["pion"].folds and not spec.observables["nuc"].folds
     assert spec.observables["pion"].part == "real"
-    assert spec.covariance.per_sample is False and spec.output.plots is True
+    assert spec.covariance.per_sample == "auto" and spec.output.plots is True
+    assert spec.binning.correction is True
     assert spec.fits[1].choose == "average" and spec.fits[1].oscillating == 0
 
 

@@ -197,7 +197,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; return the exit status.
 
     0 ok, 2 user error, 128 + the signal's number when interrupted (130 for
-    Ctrl-C, 143 for SIGTERM, 129 for SIGHUP).
+    Ctrl-C, 143 for SIGTERM, 129 for SIGHUP), 141 when the reader of the output
+    went away (``plateaufit check SPEC | head``), as a shell reports SIGPIPE.
     """
     _one_blas_thread_per_process()
     args = _build_parser().parse_args(argv)
@@ -205,12 +206,20 @@ def main(argv: Sequence[str] | None = None) -> int:
         with _stop_signals_interrupt():
             try:
                 _check_parallel_options(args)
-                return _dispatch(args)
+                status = _dispatch(args)
+                sys.stdout.flush()     # a closed pipe shows here, not at exit
+                return status
             except PlateaufitError as err:
                 print(f"plateaufit: error: {err}", file=sys.stderr)
                 return 2
     except KeyboardInterrupt as exc:   # reported once the signal handlers are restored
         return _interrupted(exc)
+    except BrokenPipeError:
+        # the pipe's reader closed early: nothing to report to anyone; point stdout
+        # at /dev/null so the interpreter's final flush raises nothing either
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 128 + 13
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -112,7 +112,7 @@ def test_a_level_fit_is_a_correlated_fit_of_lambda_n_sample_by_sample_as_scipy_d
     level, tmin, tmax = 1, 4, 10
     data, central = level_data(res, level, "axial")
     fit = fit_correlator(data, central=central, form="cosh", states=1, tmin=tmin, tmax=tmax,
-                         time_extent=T, shrinkage="none")
+                         time_extent=T, shrinkage="none", per_sample=False)
 
     t = np.arange(tmin, tmax + 1)
     samples = res.eigenvalue_samples[:, level, tmin:tmax + 1]

@@ -212,7 +212,8 @@ def refit_range(problem: RangeProblem, central: CentralFit) -> CorrelatorFit:
                      n_samples=samples.shape[0], priors=problem.priors,
                      effective_masses=problem.effective_masses,
                      oscillating=model.oscillating, state_signals=signals,
-                     model_scale=_model_scale(model, central.theta, problem.y))
+                     model_scale=_model_scale(model, central.theta, problem.y),
+                     chi2_per_dof=central.chi2_per_dof)
     return CorrelatorFit(
         model=model, tmin=problem.tmin, tmax=problem.tmax, states=problem.states,
         form=problem.form, central=central, samples=samples, errors=errors,
@@ -269,7 +270,8 @@ def fit_correlator(binned, *, form: str, states: int, tmin: int, tmax: int,
                    time_extent: int, priors: Mapping[str, Any] | None = None,
                    bounds: Mapping[str, Any] | None = None,
                    shrinkage: str | float = "ledoit-wolf", target: str = "diagonal",
-                   per_sample: bool = False, oscillating: int = 0, constant: bool = False,
+                   per_sample: bool | str = "auto", oscillating: int = 0,
+                   constant: bool = False,
                    operators: Mapping[str, tuple[str, str]] | None = None,
                    formula: Mapping | None = None, start: Mapping[str, float] | None = None,
                    engine: str = "auto", n_total_points: int | None = None,
@@ -296,10 +298,12 @@ def fit_correlator(binned, *, form: str, states: int, tmin: int, tmax: int,
         Reported name -> ``(mean, width)`` / ``(lower, upper)``.
     shrinkage, target, eigenvalue_floor
         Passed to :func:`plateaufit.stats.covariance.covariance_of_mean`.
-    per_sample : bool, optional
+    per_sample : bool or "auto", optional
         Refit every jackknife sample with its own covariance
         (:func:`plateaufit.stats.covariance.per_sample_covariances`) instead of
-        the one from all bins.
+        the one from all bins; ``"auto"`` (default) where the range has fewer
+        than :data:`plateaufit.fit.ranges.PER_SAMPLE_BINS_PER_POINT` bins per
+        point.
     oscillating, constant, operators, formula
         See :func:`~plateaufit.fit.models.make_model`.
     start : mapping, optional

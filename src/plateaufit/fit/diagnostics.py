@@ -87,6 +87,8 @@ WIDTH_RATIO = 3.0
 #: A model no larger than this fraction of the data at every point describes
 #: none of them (common practice).
 VANISHING = 1e-3
+#: chi2/dof above which a fit is a misfit and the refit-width tests are skipped.
+MISFIT_CHI2 = 3.0
 #: Posterior error / prior width at or above which the prior dominates: with
 #: Gaussian data and prior the ratio is 1/sqrt(1 + w^2/sigma_data^2), so 0.75
 #: means the data constrain the parameter less well than the prior does.
@@ -178,7 +180,8 @@ def diagnose(*, names: Sequence[str], states: int, values: Mapping[str, float],
              effective_masses: Sequence[tuple[np.ndarray, np.ndarray]] = (),
              oscillating: int = 0,
              state_signals: Mapping[int, Sequence[tuple[float, float]]] | None = None,
-             model_scale: tuple[float, float] | None = None) -> tuple[Flag, ...]:
+             model_scale: tuple[float, float] | None = None,
+             chi2_per_dof: float | None = None) -> tuple[Flag, ...]:
     """All flags of one fit.
 
     Parameters
@@ -221,6 +224,12 @@ def diagnose(*, names: Sequence[str], states: int, values: Mapping[str, float],
     model_scale : (float, float), optional
         The largest ``|model|`` and the largest ``|data|`` over the fit's points
         (the ``model-vanishes`` test).
+    chi2_per_dof : float, optional
+        Of the central fit. Above :data:`MISFIT_CHI2` the model does not describe
+        the data: its refits move with every change of the data and, with
+        per-sample covariances, of the weighting, so the width tests say nothing
+        about the minimiser (and the fit's AIC weight is negligible anyway);
+        they are skipped.
 
     Returns
     -------
@@ -304,7 +313,8 @@ def diagnose(*, names: Sequence[str], states: int, values: Mapping[str, float],
     # refits far wider or narrower than the curvature allows
     energies = [f"E{n}" for n in range(states)] if states >= 1 else list(names)
     wide, narrow = [], []
-    for name in energies:
+    misfit = chi2_per_dof is not None and chi2_per_dof > MISFIT_CHI2
+    for name in ([] if misfit else energies):
         if name in undetermined:
             continue
         jk, cv = errors.get(name, np.nan), curvature_errors.get(name, np.nan)

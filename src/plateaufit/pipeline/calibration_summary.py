@@ -195,7 +195,7 @@ def remedies(spec: Spec, bin_size: int, auto_bin_size: int, stream_sizes: Sequen
     else:
         skipped.append(f"larger bins: bins of {bin_size} already leave fewer than "
                        f"{2 * MIN_BINS} bins")
-    if cov.estimator == "binned" and not cov.per_sample:
+    if cov.estimator == "binned" and cov.per_sample is not True:
         out.append(Remedy("per-sample", "covariance.per_sample true",
                           {"covariance.per_sample": True},
                           spec.model_copy(update={"covariance": cov.model_copy(

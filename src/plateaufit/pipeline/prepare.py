@@ -28,7 +28,8 @@ from plateaufit.pipeline.results import (AutocorrelationSummary, BinningStudySum
                                          EnsembleResult, ObservableSummary, TauIntSummary)
 from plateaufit.specfile import Spec
 from plateaufit.stats.autocorr import (BinningWarning, ShortChainWarning, TauIntResult,
-                                      binning_study, choose_bin_size, tau_int)
+                                      binning_correction, binning_study, choose_bin_size,
+                                      tau_int)
 from plateaufit.stats.resample import bin_samples
 
 __all__ = ["Prepared", "prepare", "tau_int_per_timeslice", "choose_bins", "minimum_bins",
@@ -63,6 +64,12 @@ class Prepared:
         Observable -> binned data ``(n_bins, n_t)``.
     n_dropped : int
         Configurations left over at stream ends.
+    binning_correction : float
+        The factor the bins' deviations from their mean were scaled by for the
+        autocorrelation left between bins (1 when none;
+        :func:`plateaufit.stats.autocorr.binning_correction`).
+    binning_notes : tuple of str
+        Why no correction could be made (bins too short for tau_int).
     """
 
     ensemble: Ensemble
@@ -73,6 +80,8 @@ class Prepared:
     automatic: bool
     binned: dict[str, np.ndarray]
     n_dropped: int
+    binning_correction: float = 1.0
+    binning_notes: tuple[str, ...] = ()
 
     @property
     def n_bins(self) -> int:
@@ -189,9 +198,45 @@ def prepare(spec: Spec, ensemble: Ensemble) -> Prepared:
     with located():
         for name, series in ensemble.correlators.items():
             binned[name], n_dropped = bin_samples(series, bin_size, labels, return_dropped=True)
+    factor, binning_notes = 1.0, ()
+    if spec.binning.correction:
+        factor, binning_notes = _correct_bins(binned, every_tau, bin_size)
     return Prepared(ensemble=ensemble, taus=taus, bin_size=bin_size, auto_bin_size=auto_size,
                     bin_size_notes=notes, automatic=spec.binning.size == "auto", binned=binned,
-                    n_dropped=int(n_dropped))
+                    n_dropped=int(n_dropped), binning_correction=factor,
+                    binning_notes=binning_notes)
+
+
+def _correct_bins(binned: dict[str, np.ndarray], taus: np.ndarray, bin_size: int
+                  ) -> tuple[float, tuple[str, ...]]:
+    """Scale every observable's bins about their mean by the binning correction.
+
+    Bin means of ``B`` configurations still carry the autocorrelation of the
+    chain: their variance underestimates that of the mean by
+    ``(tau - 1/(4 tau)) / B`` (exponential autocorrelation, ``tau`` the largest
+    tau_int of the data). Scaling the deviations of the bins from their mean
+    by ``1 / sqrt(1 - that)`` makes the covariance of the mean, hence chi2,
+    the jackknife errors and everything derived from the bins, honest to
+    first order; the central values do not change. Measured on invented
+    replicas (tau_int 4.5, bins of 5 tau): 1 sigma coverage 0.61 -> 0.67.
+    In place; returns the factor and, when the bins are too short for the
+    formula, the note saying so (no correction then).
+    """
+    finite = taus[np.isfinite(taus)]
+    if finite.size == 0 or bin_size <= 1:
+        return 1.0, ()
+    tau = float(finite.max())
+    factor = binning_correction(tau, bin_size)
+    if factor is None:
+        return 1.0, (f"bins of {bin_size} configuration(s) are short for the largest tau_int "
+                     f"({tau:.2f}, 1/2 + sum rho convention): the errors are too small by a "
+                     f"factor the binning cannot say; use binning.size of at least "
+                     f"{int(np.ceil(5 * (tau - 1 / (4 * tau))))} or auto",)
+    if factor > 1.0:
+        for name, bins in binned.items():
+            mean = bins.mean(axis=0)
+            binned[name] = mean + factor * (bins - mean)
+    return factor, ()
 
 
 def effective_mass_kind(spec: Spec, ensemble: Ensemble, name: str) -> str:
@@ -232,5 +277,7 @@ def ensemble_result(prepared: Prepared) -> EnsembleResult:
         n_streams=len(sizes), stream_sizes=sizes, n_bins=prepared.n_bins,
         bin_size=prepared.bin_size, n_dropped=prepared.n_dropped, tau_int=tau,
         autocorrelation=autocorr, binning_study=studies, observables=observables,
-        bin_size_notes=prepared.bin_size_notes if prepared.automatic else (),
+        bin_size_notes=(prepared.bin_size_notes if prepared.automatic else ())
+        + prepared.binning_notes,
+        binning_correction=prepared.binning_correction,
     )

@@ -519,6 +519,7 @@ class EnsembleResult:
     binning_study: dict[str, BinningStudySummary] = field(default_factory=dict)
     observables: dict[str, ObservableSummary] = field(default_factory=dict)
     bin_size_notes: tuple[str, ...] = ()
+    binning_correction: float = 1.0
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -531,6 +532,7 @@ class EnsembleResult:
             "binning_study": {k: v.to_dict() for k, v in self.binning_study.items()},
             "observables": {k: v.to_dict() for k, v in self.observables.items()},
             "bin_size_notes": list(self.bin_size_notes),
+            "binning_correction": self.binning_correction,
         }
 
     @classmethod
@@ -553,6 +555,7 @@ class EnsembleResult:
             observables={k: ObservableSummary.from_dict(v)
                          for k, v in _get(d, "observables").items() if isinstance(v, Mapping)},
             bin_size_notes=tuple(str(x) for x in d.get("bin_size_notes") or ()),
+            binning_correction=_f(d.get("binning_correction", 1.0)),
         )
 
 

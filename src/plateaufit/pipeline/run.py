@@ -82,6 +82,9 @@ def _log_prepared(log: RunLog, prepared: Prepared) -> None:
         log.info(f"binning: {prepared.n_dropped} configuration(s) at stream ends dropped")
     log.info(f"{prepared.ensemble.n_configs} configurations in {len(prepared.stream_sizes)} "
              f"stream(s) -> {prepared.n_bins} bins of {prepared.bin_size}")
+    if prepared.binning_correction > 1.0:
+        log.info(f"binning correction: bins scaled by {prepared.binning_correction:.3f} about "
+                 "their mean for the autocorrelation left between bins (binning.correction)")
 
 
 def _log_fit(log: RunLog, fit: FitResult) -> None:

@@ -95,9 +95,12 @@ class ObservableSpec(_Strict):
 
 
 class BinningSpec(_Strict):
-    """``binning:`` -- ``size: auto`` (default) or a number of configurations per bin."""
+    """``binning:`` -- ``size: auto`` (default) or a number of configurations per bin;
+    ``correction: true`` (default) scales the bins for the autocorrelation left
+    between them (:func:`plateaufit.stats.autocorr.binning_correction`)."""
 
     size: int | Literal["auto"] = "auto"
+    correction: bool = True
 
     @field_validator("size", mode="plain")
     @classmethod
@@ -114,6 +117,10 @@ class BinningSpec(_Strict):
 class CovarianceSpec(_Strict):
     """``covariance:`` -- estimator, shrinkage, its target, per-sample covariance, eigenvalue floor.
 
+    ``per_sample: auto`` (default) refits each jackknife sample with its own
+    covariance where a range has fewer than 10 bins per point (a covariance
+    estimated from few bins is noisy, and frozen in the refits its noise never
+    reaches the errors), and with the one from all bins elsewhere.
     ``estimator: binned`` (default) takes the covariance of the mean from the bins;
     ``gamma`` from the windowed autocorrelation matrix of the unbinned data (Wolff 2004),
     for the central fit and, frozen, for every refit (so not with ``per_sample``).
@@ -122,13 +129,13 @@ class CovarianceSpec(_Strict):
     estimator: Literal["binned", "gamma"] = "binned"
     shrinkage: str | float = "ledoit-wolf"
     target: Literal["diagonal", "identity"] = "diagonal"
-    per_sample: bool = False
+    per_sample: bool | Literal["auto"] = "auto"
     eigenvalue_floor: float | None = None
 
     @field_validator("per_sample", mode="after")
     @classmethod
-    def _per_sample(cls, value: bool, info: ValidationInfo) -> bool:
-        if value and info.data.get("estimator") == "gamma":
+    def _per_sample(cls, value: bool | str, info: ValidationInfo) -> bool | str:
+        if value is True and info.data.get("estimator") == "gamma":
             raise ValueError("per_sample: true takes each refit's covariance from the bins, "
                              "but estimator: gamma estimates one covariance from the unbinned "
                              "data; set per_sample: false or estimator: binned")
