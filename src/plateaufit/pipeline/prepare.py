@@ -213,8 +213,12 @@ def _correct_bins(binned: dict[str, np.ndarray], taus: np.ndarray, bin_size: int
 
     Bin means of ``B`` configurations still carry the autocorrelation of the
     chain: their variance underestimates that of the mean by
-    ``(tau - 1/(4 tau)) / B`` (exponential autocorrelation, ``tau`` the largest
-    tau_int of the data). Scaling the deviations of the bins from their mean
+    ``(tau - 1/(4 tau)) / B`` (exponential autocorrelation). ``tau`` is the
+    median tau_int over every timeslice of every observable: the largest one,
+    which sets the bin size, is biased upwards as the maximum of many noisy
+    estimates (measured: 6.4 +- 1.2 for a true 4.5 with 1000 configurations and
+    17 timeslices), and correcting with it inflated the covariance of the mean
+    so much that chi2 came out too small (p-values skewed high). Scaling the deviations of the bins from their mean
     by ``1 / sqrt(1 - that)`` makes the covariance of the mean, hence chi2,
     the jackknife errors and everything derived from the bins, honest to
     first order; the central values do not change. Measured on invented
@@ -225,10 +229,10 @@ def _correct_bins(binned: dict[str, np.ndarray], taus: np.ndarray, bin_size: int
     finite = taus[np.isfinite(taus)]
     if finite.size == 0 or bin_size <= 1:
         return 1.0, ()
-    tau = float(finite.max())
+    tau = float(np.median(finite))
     factor = binning_correction(tau, bin_size)
     if factor is None:
-        return 1.0, (f"bins of {bin_size} configuration(s) are short for the largest tau_int "
+        return 1.0, (f"bins of {bin_size} configuration(s) are short for the typical tau_int "
                      f"({tau:.2f}, 1/2 + sum rho convention): the errors are too small by a "
                      f"factor the binning cannot say; use binning.size of at least "
                      f"{int(np.ceil(5 * (tau - 1 / (4 * tau))))} or auto",)
