@@ -1,4 +1,4 @@
-"""Command-line entry point: ``plateaufit check|fit|calibrate|demo|report``.
+"""Command-line entry point: ``plateaufit check|fit|batch|calibrate|demo|report|cache``.
 
 The command line only parses arguments and dispatches; every piece of work
 lives in the modules it calls. User errors (:class:`~plateaufit.errors.PlateaufitError`)
@@ -39,6 +39,25 @@ def _build_parser() -> argparse.ArgumentParser:
                        help="address of a dask.distributed scheduler to run scan points on")
     p_fit.add_argument("--no-plots", action="store_true", help="skip plots and the report page")
     p_fit.add_argument("--quiet", action="store_true", help="no progress bars")
+    _add_cache_options(p_fit)
+
+    p_batch = sub.add_parser("batch", help="run many specs (ensembles) on one executor and "
+                             "write a summary across them")
+    p_batch.add_argument("specs", nargs="+", metavar="SPEC",
+                         help="spec files, glob patterns ('specs/*.yaml') or list files "
+                         "(one spec path per line)")
+    p_batch.add_argument("--out", default=None,
+                         help="batch folder for summary.csv and summary.html, each spec "
+                         "then writing OUT/<spec name> (default: batch_output, each spec "
+                         "into its own output.dir)")
+    p_batch.add_argument("--jobs", type=int, default=None,
+                         help="worker processes shared by all specs (default: all cores)")
+    p_batch.add_argument("--scheduler", default=None,
+                         help="address of a dask.distributed scheduler to run scan points on")
+    p_batch.add_argument("--no-plots", action="store_true",
+                         help="skip plots and report pages (the summary's plots too)")
+    p_batch.add_argument("--quiet", action="store_true", help="no progress bar")
+    _add_cache_options(p_batch)
 
     p_demo = sub.add_parser("demo", help="write the invented demo data and spec, then fit them")
     p_demo.add_argument("--out", default="demo_output", help="directory for data, spec and results")
@@ -67,7 +86,35 @@ def _build_parser() -> argparse.ArgumentParser:
 
     p_report = sub.add_parser("report", help="rebuild plots and the report page from results.json")
     p_report.add_argument("dir", help="an output directory holding results.json")
+
+    p_cache = sub.add_parser("cache", help="show the size of a fit cache, or clear it")
+    p_cache.add_argument("dir", help="an output directory (its .plateaufit-cache) or a cache "
+                         "folder given to --cache")
+    what = p_cache.add_mutually_exclusive_group()
+    what.add_argument("--size", action="store_true", help="entries and bytes (the default)")
+    what.add_argument("--clear", action="store_true", help="remove every entry")
     return parser
+
+
+def _add_cache_options(p: argparse.ArgumentParser) -> None:
+    group = p.add_mutually_exclusive_group()
+    group.add_argument("--cache", metavar="DIR", default=None,
+                       help="fit cache folder, e.g. one shared between specs "
+                       "(default: OUT/.plateaufit-cache)")
+    group.add_argument("--no-cache", action="store_true",
+                       help="neither read nor write the fit cache")
+
+
+def _cache_choice(args: argparse.Namespace) -> bool | str:
+    return False if args.no_cache else (args.cache if args.cache is not None else True)
+
+
+def _size_text(n_bytes: int) -> str:
+    for unit in ("bytes", "KiB", "MiB", "GiB"):
+        if n_bytes < 1024 or unit == "GiB":
+            return f"{n_bytes:.0f} {unit}" if unit == "bytes" else f"{n_bytes:.1f} {unit}"
+        n_bytes /= 1024
+    raise AssertionError("unreachable")
 
 
 def _dispatch(args: argparse.Namespace) -> int:
@@ -80,8 +127,35 @@ def _dispatch(args: argparse.Namespace) -> int:
         from plateaufit.pipeline.run import run_spec
 
         results = run_spec(args.spec, args.out, plots=not args.no_plots, jobs=args.jobs,
-                           scheduler=args.scheduler, progress=not args.quiet, echo=True)
+                           scheduler=args.scheduler, progress=not args.quiet, echo=True,
+                           cache=_cache_choice(args))
         print(f"results written to {results['output']['dir']}")
+        return 0
+    if args.command == "batch":
+        from plateaufit.pipeline.batch import run_batch
+
+        run = run_batch(args.specs, args.out, jobs=args.jobs, scheduler=args.scheduler,
+                        cache=_cache_choice(args), plots=not args.no_plots,
+                        progress=not args.quiet, echo=True)
+        print(f"summary of {len(run.items)} spec(s) written to {run.folder / 'summary.html'} "
+              f"({run.seconds:.1f} s)")
+        for item in run.failed:
+            print(f"plateaufit: error: {item.spec}: {item.error}", file=sys.stderr)
+        if run.failed:
+            print(f"plateaufit: error: {len(run.failed)} of {len(run.items)} spec(s) failed; "
+                  "the others' results and the summary were written", file=sys.stderr)
+            return 2
+        return 0
+    if args.command == "cache":
+        from plateaufit.pipeline.cache import cache_size, clear_cache
+
+        if args.clear:
+            folder, n, size = clear_cache(args.dir)
+            print(f"fit cache {folder}: removed {n} entr{'y' if n == 1 else 'ies'} "
+                  f"({_size_text(size)})")
+        else:
+            folder, n, size = cache_size(args.dir)
+            print(f"fit cache {folder}: {n} entr{'y' if n == 1 else 'ies'}, {_size_text(size)}")
         return 0
     if args.command == "calibrate":
         from plateaufit.pipeline.calibrate import calibrate_spec, print_summary

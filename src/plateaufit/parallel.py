@@ -174,7 +174,23 @@ def _split(items: Sequence[Any], n_chunks: int) -> list[list[Any]]:
     return [list(items[bounds[k]:bounds[k + 1]]) for k in range(n_chunks)]
 
 
-def _progress_bar(total: int, progress: bool, desc: str | None):
+class _BorrowedBar:
+    """A caller's progress bar (``progress=`` an object with ``update``): advanced
+    by this map, closed by its owner (a batch's one bar over all its specs)."""
+
+    def __init__(self, bar: Any) -> None:
+        self._bar = bar
+
+    def update(self, n: int = 1) -> None:
+        self._bar.update(n)
+
+    def close(self) -> None:
+        pass
+
+
+def _progress_bar(total: int, progress: Any, desc: str | None):
+    if hasattr(progress, "update"):
+        return _BorrowedBar(progress)
     from tqdm.auto import tqdm
 
     show = bool(progress) and sys.stderr.isatty()
@@ -218,7 +234,7 @@ class Executor:
         waiting for them (nothing to do for the serial executor)."""
 
     def map(self, fn: Callable[..., Any], items: Iterable[Any], *, shared: Any = _NO_SHARED,
-            progress: bool = False, desc: str | None = None) -> list[Any]:
+            progress: Any = False, desc: str | None = None) -> list[Any]:
         """Apply ``fn`` to every item; return the results in input order.
 
         Parameters
@@ -230,8 +246,9 @@ class Executor:
             Task arguments.
         shared : object, optional
             Data every task needs, shipped once per chunk of tasks.
-        progress : bool, optional
-            Show a progress bar on stderr (only when stderr is a terminal).
+        progress : bool or progress bar, optional
+            Show a progress bar on stderr (only when stderr is a terminal); or
+            an open bar (anything with ``update(n)``) to advance by one per task.
         desc : str, optional
             Label of the progress bar.
 

@@ -29,6 +29,7 @@ from __future__ import annotations
 import ast
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -766,6 +767,14 @@ class FormulaModel(CorrelatorModel):
         self.operators = None
         self.expression = str(expression)
         self.start = {str(k): float(v) for k, v in params.items()}
+        self._compile()
+        self._setup_points(observables, t_ranges, time_extent)
+        self.amplitude_labels = ()
+        self.param_names = tuple(self.start)
+        self.reported_names = self.param_names
+        self.n_params = len(self.param_names)
+
+    def _compile(self) -> None:
         tree = check_formula(self.expression, list(self.start))
         # every number becomes a numpy float64 looked up by name, so that no
         # sub-expression is evaluated in Python integers or floats: 9**9**9 or
@@ -773,15 +782,20 @@ class FormulaModel(CorrelatorModel):
         self._constants: dict[str, np.float64] = {}
         tree = ast.fix_missing_locations(_ConstantsToNames(self._constants).visit(tree))
         self._code = compile(tree, "<formula>", "eval")
-        self._setup_points(observables, t_ranges, time_extent)
-        self.amplitude_labels = ()
-        self.param_names = tuple(self.start)
-        self.reported_names = self.param_names
-        self.n_params = len(self.param_names)
         self._globals = {"__builtins__": {}, "exp": np.exp, "log": np.log,
                          "cosh": np.cosh, "sinh": np.sinh, "tanh": np.tanh,
                          "sqrt": np.sqrt, "abs": np.abs, "cos": np.cos, "sin": np.sin,
                          "where": np.where, "pi": np.pi}
+
+    def __getstate__(self) -> dict[str, Any]:
+        # code objects do not pickle: ship the expression and compile it again
+        # on arrival (worker processes, the fit cache)
+        return {k: v for k, v in self.__dict__.items()
+                if k not in ("_code", "_globals", "_constants")}
+
+    def __setstate__(self, state: dict[str, Any]) -> None:
+        self.__dict__.update(state)
+        self._compile()
 
     def __repr__(self) -> str:
         return (f"FormulaModel({self.expression!r}, params={list(self.param_names)}, "

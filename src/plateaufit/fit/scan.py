@@ -22,7 +22,7 @@ from __future__ import annotations
 import numbers
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Protocol
 
 import numpy as np
 
@@ -273,14 +273,17 @@ def _effective_masses(data: Any, fit_kwargs: dict[str, Any]) -> dict[str, Any] |
 
 
 def _central_phase(problems: dict[tuple[int, int, int], RangeProblem],
-                   state_list: list[int]) -> dict[tuple[int, int, int], CentralFit]:
+                   state_list: list[int],
+                   known: Mapping[tuple[int, int, int], CentralFit] | None = None
+                   ) -> dict[tuple[int, int, int], CentralFit]:
     """Central fits of every point: one stacked engine call per number of states.
 
     States go upward so that a fit of ``n`` states starts, among others, from
     the fit of ``n - 1`` states on the same range (made here when the scan does
-    not include it).
+    not include it, taken from ``known`` -- the central fits of points found in
+    the fit cache -- when there).
     """
-    centrals: dict[tuple[int, int, int], CentralFit] = {}
+    centrals: dict[tuple[int, int, int], CentralFit] = dict(known or {})
     formula = any(p.form == "formula" for p in problems.values())
     for states in state_list:
         keys = [k for k in problems if k[2] == states]
@@ -318,9 +321,9 @@ def _n_timeslices(binned: np.ndarray | Mapping[str, np.ndarray]) -> tuple[list[s
     return None, np.shape(binned)[-1]
 
 
-def _prepare(binned: np.ndarray | Mapping[str, np.ndarray], tmin: RangeSpec, tmax: RangeSpec,
-             states: int | Sequence[int], fit_kwargs: dict[str, Any]):
-    """The points of a scan and their set-up: (keys, problems, shared task data)."""
+def _setup(binned: np.ndarray | Mapping[str, np.ndarray], tmin: RangeSpec, tmax: RangeSpec,
+           states: int | Sequence[int], fit_kwargs: dict[str, Any]):
+    """The points of a scan and what every point needs: (keys, shared task data)."""
     names, n_t = _n_timeslices(binned)
     options = {"oscillating": fit_kwargs.get("oscillating", 0) or 0,
                "constant": bool(fit_kwargs.get("constant", False)),
@@ -345,9 +348,14 @@ def _prepare(binned: np.ndarray | Mapping[str, np.ndarray], tmin: RangeSpec, tma
     keys = [(p.tmin, p.tmax, p.states) for p in points]
     kwargs_by_states = _per_states_kwargs(dict(fit_kwargs), names_of, state_list)
     effective = _effective_masses(data, fit_kwargs)
+    return keys, (data, kwargs_by_states, effective)
+
+
+def _problems(shared: tuple[Any, dict[int, dict[str, Any]], dict[str, Any] | None],
+              keys: Sequence[tuple[int, int, int]]) -> dict[tuple[int, int, int], RangeProblem]:
+    data, kwargs_by_states, effective = shared
     with CaughtWarnings():
-        problems = {k: _prepare_point(data, kwargs_by_states, effective, k) for k in keys}
-    return keys, problems, (data, kwargs_by_states, effective)
+        return {k: _prepare_point(data, kwargs_by_states, effective, k) for k in keys}
 
 
 def prepare_scan(binned: np.ndarray | Mapping[str, np.ndarray], *, tmin: RangeSpec,
@@ -371,13 +379,29 @@ def prepare_scan(binned: np.ndarray | Mapping[str, np.ndarray], *, tmin: RangeSp
     FitError
         As :func:`scan` would, for the first point that cannot be set up.
     """
-    keys, problems, _ = _prepare(binned, tmin, tmax, states, fit_kwargs)
-    return {k: problems[k] for k in keys}
+    keys, shared = _setup(binned, tmin, tmax, states, fit_kwargs)
+    return _problems(shared, keys)
+
+
+class PointCache(Protocol):
+    """Where :func:`scan` finds and keeps finished points (a fit cache).
+
+    :class:`plateaufit.pipeline.cache.CacheSession` is one: keys over
+    everything that decides a point, entries on disk.
+    """
+
+    def keys(self, data: Any, kwargs_by_states: Mapping[int, Mapping[str, Any]],
+             points: Sequence[tuple[int, int, int]]) -> list[str]: ...
+
+    def get(self, key: str, point: tuple[int, int, int]) -> CorrelatorFit | None: ...
+
+    def put(self, key: str, fit: CorrelatorFit) -> None: ...
 
 
 def scan(binned: np.ndarray | Mapping[str, np.ndarray], *, tmin: RangeSpec, tmax: RangeSpec,
-         states: int | Sequence[int], executor: Any = None, progress: bool = False,
-         label: str | None = None, **fit_kwargs: Any) -> list[CorrelatorFit]:
+         states: int | Sequence[int], executor: Any = None, progress: Any = False,
+         label: str | None = None, cache: PointCache | None = None,
+         **fit_kwargs: Any) -> list[CorrelatorFit]:
     """Fit every point of a fit-range / model-size scan.
 
     Parameters
@@ -392,10 +416,15 @@ def scan(binned: np.ndarray | Mapping[str, np.ndarray], *, tmin: RangeSpec, tmax
     executor : plateaufit.parallel.Executor, optional
         Where to run the points (default: serially in this process). The data
         are shipped with each chunk of points, not with every point.
-    progress : bool, optional
-        Progress bar (on a terminal only).
+    progress : bool or progress bar, optional
+        Progress bar (on a terminal only), or an open bar to advance by one
+        per point (points from the cache included).
     label : str, optional
         Label of the progress bar (the fit's name).
+    cache : PointCache, optional
+        A fit cache: points found there are not fitted again (neither their
+        central fit nor their refits), the others are fitted and stored.
+        Results are the same, bit for bit, as without it.
     **fit_kwargs
         Passed to every ``fit_correlator`` call (``form``, ``time_extent``,
         ``priors``, ``operators``, ...). ``priors``, ``bounds`` and ``start``
@@ -420,20 +449,40 @@ def scan(binned: np.ndarray | Mapping[str, np.ndarray], *, tmin: RangeSpec, tmax
     ----------
     W. I. Jay, E. T. Neil, Phys. Rev. D 103 (2021) 114502.
     """
-    keys, problems, shared = _prepare(binned, tmin, tmax, states, fit_kwargs)
-    state_list = sorted({k[2] for k in keys})
+    keys, shared = _setup(binned, tmin, tmax, states, fit_kwargs)
+    found: dict[tuple[int, int, int], CorrelatorFit] = {}
+    cache_keys: dict[tuple[int, int, int], str] = {}
+    if cache is not None:
+        cache_keys = dict(zip(keys, cache.keys(shared[0], shared[1], keys)))
+        for k in keys:
+            fit = cache.get(cache_keys[k], k)
+            if fit is not None:
+                found[k] = fit
+    todo = [k for k in keys if k not in found]
+    if hasattr(progress, "update") and found:
+        progress.update(len(found))
+    if not todo:
+        return [found[k] for k in keys]
+    problems = _problems(shared, todo)
+    state_list = sorted({k[2] for k in todo})
     # 1. every range's central fit, here (one stacked engine call per number
     #    of states: deterministic, whatever the executor)
     with CaughtWarnings() as caught:
-        centrals = _central_phase(problems, state_list)
-    if caught.count:      # set-up warnings (rare): counted with the first point
-        first = centrals[keys[0]]
+        centrals = _central_phase(problems, state_list,
+                                  {k: fit.central for k, fit in found.items()})
+    if caught.count:      # set-up warnings (rare): counted with the first point fitted
+        first = centrals[todo[0]]
         first.n_numerical_warnings += caught.count
         first.numerical_warnings = merge_messages(first.numerical_warnings, caught.messages)
     # 2. the jackknife refits of every point, on the executor
-    items = [(k, centrals[k]) for k in keys]
+    items = [(k, centrals[k]) for k in todo]
     if executor is None:
         from plateaufit.parallel import SerialExecutor
 
         executor = SerialExecutor()
-    return executor.map(_refit_point, items, shared=shared, progress=progress, desc=label)
+    fitted = dict(zip(todo, executor.map(_refit_point, items, shared=shared,
+                                         progress=progress, desc=label)))
+    if cache is not None:
+        for k in todo:
+            cache.put(cache_keys[k], fitted[k])
+    return [found[k] if k in found else fitted[k] for k in keys]

@@ -59,14 +59,16 @@ def n_scan_points(spec: Spec, fit: FitSpec) -> int:
 
 
 def run_fit(spec: Spec, index: int, prepared: Prepared, *, executor: Any = None,
-            progress: bool = False, solutions: Any = None,
-            effective_masses: bool = True) -> FitResult:
+            progress: Any = False, solutions: Any = None,
+            effective_masses: bool = True, cache: Any = None) -> FitResult:
     """Scan fit ``fits[index]`` of ``spec`` on the prepared data; choose or average.
 
     A fit of a matrix level goes to :func:`plateaufit.pipeline.matrices.run_level_fit`
     (``solutions``: its shared :class:`~plateaufit.pipeline.matrices.GevpSolutions`).
     ``effective_masses=False`` leaves the (display-only) effective masses out of
-    the result; ``plateaufit calibrate``'s replicas need none.
+    the result; ``plateaufit calibrate``'s replicas need none. ``cache`` (a
+    :class:`~plateaufit.pipeline.cache.CacheSession`) serves and keeps the scan
+    points (:func:`plateaufit.fit.scan.scan`).
 
     Returns
     -------
@@ -83,7 +85,7 @@ def run_fit(spec: Spec, index: int, prepared: Prepared, *, executor: Any = None,
         from plateaufit.pipeline.matrices import run_level_fit   # it imports this module
 
         return run_level_fit(spec, index, prepared, solutions=solutions, executor=executor,
-                             progress=progress)
+                             progress=progress, cache=cache)
     data = {name: prepared.binned[name] for name in fit.observables}
     kwargs = fit_kwargs(spec, fit)
     if spec.covariance.estimator == "gamma":    # one covariance from the unbinned data
@@ -92,7 +94,8 @@ def run_fit(spec: Spec, index: int, prepared: Prepared, *, executor: Any = None,
         kwargs["covariance_matrix"] = gamma_fit_covariance(spec, fit, prepared)
     with located(fit_index=index):
         fits = scan(data, tmin=fit.tmin, tmax=fit.tmax, states=fit.states_values,
-                    executor=executor, progress=progress, label=fit.name, **kwargs)
+                    executor=executor, progress=progress, label=fit.name, cache=cache,
+                    **kwargs)
         point = fit.chosen_point()
         return summarise_scan(fits, name=fit.name, choose=point,
                               binned=data if effective_masses else None,

@@ -175,7 +175,7 @@ def level_data(result: GevpResult, level: int, name: str
 
 def run_level_fit(spec: Spec, index: int, prepared: Prepared, *,
                   solutions: GevpSolutions | None = None, executor: Any = None,
-                  progress: bool = False) -> FitResult:
+                  progress: Any = False, cache: Any = None) -> FitResult:
     """Scan the fit ``fits[index]`` of one matrix level; choose or average.
 
     Parameters
@@ -186,7 +186,7 @@ def run_level_fit(spec: Spec, index: int, prepared: Prepared, *,
     prepared : Prepared
     solutions : GevpSolutions, optional
         Shared between the fits of a run (solved here when not given).
-    executor, progress
+    executor, progress, cache
         As for :func:`plateaufit.pipeline.fits.run_fit`.
 
     Returns
@@ -213,6 +213,7 @@ def run_level_fit(spec: Spec, index: int, prepared: Prepared, *,
     with located(fit_index=index):
         fits = scan(data, tmin=fit.tmin, tmax=fit.tmax, states=fit.states_values,
                     executor=executor, progress=progress, label=fit.name, central=central,
+                    cache=cache,
                     **fit_kwargs(spec, fit))
         summary = summarise_scan(fits, name=fit.name, choose=fit.chosen_point(),
                                  time_extent=time_extent)

@@ -23,6 +23,7 @@ import os
 import platform
 import sys
 from collections.abc import Mapping
+from contextlib import nullcontext
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -31,7 +32,8 @@ import numpy as np
 
 from plateaufit import __version__
 from plateaufit.data.ensemble import Ensemble
-from plateaufit.parallel import make_executor
+from plateaufit.parallel import Executor, make_executor
+from plateaufit.pipeline.cache import CacheSession, FitCache, default_cache_root
 from plateaufit.pipeline.derived import derive
 from plateaufit.pipeline.fits import n_scan_points, run_fit
 from plateaufit.pipeline.inputs import data_checksums, file_sha256, load_ensemble
@@ -117,7 +119,7 @@ def _log_fit(log: RunLog, fit: FitResult) -> None:
 def run_analysis(spec: Spec, *, executor: Any = None, progress: bool = False,
                  log: RunLog | None = None, out_dir: str | os.PathLike[str] | None = None,
                  spec_path: Path | None = None, ensemble: Ensemble | None = None,
-                 effective_masses: bool = True) -> Results:
+                 effective_masses: bool = True, cache: CacheSession | None = None) -> Results:
     """Everything ``plateaufit fit`` computes, as typed results; writes nothing.
 
     Parameters
@@ -138,6 +140,9 @@ def run_analysis(spec: Spec, *, executor: Any = None, progress: bool = False,
         disk); the provenance then has no data checksums.
     effective_masses : bool
         The fits' (display-only) effective masses; the replicas skip them.
+    cache : CacheSession, optional
+        A fit cache (:meth:`plateaufit.pipeline.cache.FitCache.session`): scan
+        points found there are not fitted again; the others are stored.
 
     Returns
     -------
@@ -156,8 +161,14 @@ def run_analysis(spec: Spec, *, executor: Any = None, progress: bool = False,
         log.info(f"fit {fit.name}: {n_scan_points(spec, fit)} fit range(s) x state count(s), "
                  f"{prepared.n_bins} jackknife samples each")
         fits[fit.name] = run_fit(spec, index, prepared, executor=executor, progress=progress,
-                                 solutions=solutions, effective_masses=effective_masses)
+                                 solutions=solutions, effective_masses=effective_masses,
+                                 cache=cache)
         _log_fit(log, fits[fit.name])
+    if cache is not None:
+        for note in cache.notes:
+            log.info(note)
+        log.info(f"fit cache: {cache.hits} of {cache.hits + cache.misses} scan point(s) from "
+                 f"the cache, {cache.misses} fitted ({cache.store.root})")
     matrices = summarise_matrices(spec, solutions, fits)
     log_matrices(log.info, matrices)
     derived = derive(spec, fits)
@@ -195,9 +206,10 @@ def run_analysis(spec: Spec, *, executor: Any = None, progress: bool = False,
 
 def run_spec(source: str | os.PathLike[str] | Spec | Mapping[str, Any],
              out: str | os.PathLike[str] | None = None, *, plots: bool = True,
-             jobs: int | None = None, scheduler: str | None = None, progress: bool = True,
-             echo: bool = False, base_dir: str | os.PathLike[str] | None = None
-             ) -> dict[str, Any]:
+             jobs: int | None = None, scheduler: str | None = None, progress: Any = True,
+             echo: bool = False, base_dir: str | os.PathLike[str] | None = None,
+             cache: bool | str | os.PathLike[str] = True, executor: Executor | None = None,
+             session: list[CacheSession] | None = None) -> dict[str, Any]:
     """Run the analysis a specification describes and write its results.
 
     Parameters
@@ -220,6 +232,16 @@ def run_spec(source: str | os.PathLike[str] | Spec | Mapping[str, Any],
         Also print the log lines to stderr as the run goes.
     base_dir : path, optional
         For a dict ``source``: the directory relative paths are resolved against.
+    cache : bool or path
+        The fit cache (:mod:`plateaufit.pipeline.cache`): ``True`` (default)
+        ``OUT/.plateaufit-cache``, a path for a cache shared between specs,
+        ``False`` neither read nor written. Results are the same bit for bit.
+    executor : Executor, optional
+        An open executor to run the scan points on (a batch shares one);
+        ``jobs`` and ``scheduler`` are then ignored.
+    session : list, optional
+        Receives the run's :class:`~plateaufit.pipeline.cache.CacheSession`
+        (what came from the cache), when there is a cache.
 
     Returns
     -------
@@ -240,9 +262,16 @@ def run_spec(source: str | os.PathLike[str] | Spec | Mapping[str, Any],
         log = RunLog(echo=echo)
         log.info(f"plateaufit {__version__}: "
                  f"{spec.path if spec.path is not None else '(in memory)'}")
-        with make_executor(jobs=jobs, scheduler=scheduler) as executor:
-            results = run_analysis(spec, executor=executor, progress=progress, log=log,
-                                   out_dir=folder.path, spec_path=spec.path)
+        store = None
+        if cache is not False:
+            store = FitCache(default_cache_root(folder.path) if cache is True else Path(cache))
+        tally = store.session() if store is not None else None
+        if tally is not None and session is not None:
+            session.append(tally)
+        with (nullcontext(executor) if executor is not None
+              else make_executor(jobs=jobs, scheduler=scheduler)) as running:
+            results = run_analysis(spec, executor=running, progress=progress, log=log,
+                                   out_dir=folder.path, spec_path=spec.path, cache=tally)
         data = results.to_dict()
         if plots:
             log.info(f"report page: {folder.path / 'report.html'}")
