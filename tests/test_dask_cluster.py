@@ -188,3 +188,38 @@ def test_a_worker_dying_in_a_task_is_a_clear_error_naming_scheduler():
         assert "died" in info.value.message
     finally:
         fragile.close()
+
+
+@pytest.mark.slow
+def test_batch_with_scheduler_writes_the_local_pools_numbers(cluster, tmp_path):
+    specs = []
+    for name, n_cfg in (("osprey-g", 100), ("osprey-h", 140)):
+        specs.append(str(write_run(tmp_path / name, n_cfg=n_cfg, tmin=[3, 5], tmax=[11, 12],
+                                   states=[1, 2], name=f"{name}.yaml")))
+    common = ("--no-plots", "--quiet", "--no-cache")
+    local = subprocess.run(cli("batch", *specs, "--out", str(tmp_path / "pool"), "--jobs", "2",
+                               *common), capture_output=True, text=True, timeout=300)
+    remote = subprocess.run(cli("batch", *specs, "--out", str(tmp_path / "dask"), "--scheduler",
+                                cluster.scheduler_address, *common),
+                            capture_output=True, text=True, timeout=300)
+    assert local.returncode == 0, local.stderr
+    assert remote.returncode == 0, remote.stderr
+    for name in ("osprey-g", "osprey-h"):
+        a = json.loads((tmp_path / "pool" / name / "results.json").read_text())
+        b = json.loads((tmp_path / "dask" / name / "results.json").read_text())
+        for key in ("ensemble", "fits", "derived", "warnings"):
+            assert a[key] == b[key], (name, key)
+    assert ((tmp_path / "pool" / "summary.csv").read_text()
+            == (tmp_path / "dask" / "summary.csv").read_text())
+
+
+def test_batch_with_a_scheduler_nobody_listens_at_is_one_line_at_once(tmp_path):
+    spec = write_run(tmp_path, n_cfg=60, tmin=3, tmax=11, states=1)
+    start = time.perf_counter()
+    done = subprocess.run(cli("batch", str(spec), "--scheduler", f"tcp://127.0.0.1:{_closed_port()}",
+                              "--out", str(tmp_path / "b"), "--quiet"),
+                          capture_output=True, text=True, timeout=60)
+    assert done.returncode == 2
+    assert "--scheduler" in _last_line(done.stderr)
+    assert time.perf_counter() - start < 30
+    assert not (tmp_path / "b").exists()
