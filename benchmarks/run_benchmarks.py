@@ -9,6 +9,9 @@ The workloads live in their own modules:
 * ``bench_gevp.py`` -- the variational method on a 4 x 4 matrix;
 * ``bench_calibrate.py`` -- ``plateaufit calibrate``: 200 replicas of a single-fit
   spec with 8000 configurations (target under 2 minutes with --jobs 2);
+* ``bench_batch.py`` -- ``plateaufit batch`` of 8 ensembles x 2 fits x 60 points:
+  cold, unchanged rerun (target under a third of cold), one fit changed, and
+  the local pool against a dask LocalCluster (run once, not in the variants);
 * ``bench_replicas.py`` -- synthetic replicas and the Gamma-method covariance
   (run on its own: ``.venv/bin/python benchmarks/bench_replicas.py``).
 
@@ -21,7 +24,7 @@ printed at the start and the end of each run; figures move by +-30% with it.
 
 Options: ``--quick`` (smaller lmfit subset), ``--skip-b``, ``--no-variants``
 (only the run as given), ``--profile`` (cProfile of workload A's scan, top
-entries printed), ``--only {a,b,c,gevp,calibrate}`` (one workload).
+entries printed), ``--only {a,b,c,gevp,calibrate,batch}`` (one workload).
 """
 
 from __future__ import annotations
@@ -36,6 +39,8 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
 
+from bench_batch import TARGETS as BATCH_TARGETS  # noqa: E402
+from bench_batch import print_batch, workload_batch  # noqa: E402
 from bench_calibrate import TARGETS as CAL_TARGETS  # noqa: E402
 from bench_calibrate import print_calibrate, workload_calibrate  # noqa: E402
 from bench_gevp import TARGETS as GEVP_TARGETS  # noqa: E402
@@ -45,7 +50,7 @@ from bench_scans import print_scans, workload_a, workload_b, workload_c  # noqa:
 from common import environment, load_average  # noqa: E402
 
 OUTPUT = HERE / "output" / "latest.json"
-TARGETS = {**SCAN_TARGETS, **GEVP_TARGETS, **CAL_TARGETS}
+TARGETS = {**SCAN_TARGETS, **GEVP_TARGETS, **CAL_TARGETS, **BATCH_TARGETS}
 
 
 def print_report(res: dict) -> None:
@@ -60,6 +65,7 @@ def print_report(res: dict) -> None:
     print_scans(res, line)
     print_gevp(res, line)
     print_calibrate(res, line)
+    print_batch(res, line)
     print("(stage times overlap: 'refits: total' contains 'refits: batched engine'; the "
           "central fits contain their starting points.)")
 
@@ -77,6 +83,8 @@ def run_all(args) -> dict:
         res["GEVP"] = workload_gevp()
     if only in (None, "calibrate"):
         res["CAL"] = workload_calibrate()
+    if only in (None, "batch") and not getattr(args, "child", False):
+        res["BATCH"] = workload_batch()
     # the machine may be shared: the load at the end tells whether it changed
     res["environment"]["load_average_end"] = load_average()
     return res
@@ -115,7 +123,7 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--profile", action="store_true", help="cProfile workload A's scan")
     parser.add_argument("--no-variants", action="store_true",
                         help="do not repeat the run with other OpenBLAS settings")
-    parser.add_argument("--only", choices=("a", "b", "c", "gevp", "calibrate"), default=None,
+    parser.add_argument("--only", choices=("a", "b", "c", "gevp", "calibrate", "batch"), default=None,
                         help="run one workload only")
     parser.add_argument("--label", default="environment as given")
     parser.add_argument("--child", action="store_true", help=argparse.SUPPRESS)
