@@ -131,7 +131,7 @@ def _output_dirs(specs: Sequence[Path], loaded: dict[Path, Any], out: Path | Non
     """Each spec's output folder: ``OUT/<spec stem>`` (made unique), else its own output.dir."""
     dirs: dict[Path, Path | None] = {}
     if out is not None:
-        used: dict[str, int] = {}
+        used: dict[str, int] = {"plots": 1}   # OUT/plots holds the summary's plots
         for path in specs:
             n = used.get(path.stem, 0)
             used[path.stem] = n + 1
