@@ -254,6 +254,8 @@ def run_batch(arguments: Sequence[str], out: str | os.PathLike[str] | None = Non
                                  from_cache=tally.hits if tally else 0,
                                  n_points=(tally.hits + tally.misses) if tally else 0)
                 items.append(item)
+                cached = sum(i.from_cache for i in items)
+                bar.set_postfix_str(f"{cached} from the cache, {number}/{len(specs)} specs")
                 if echo:
                     _echo(bar, number, len(specs), item)
     finally:
