@@ -323,7 +323,8 @@ def _n_timeslices(binned: np.ndarray | Mapping[str, np.ndarray]) -> tuple[list[s
 
 def _setup(binned: np.ndarray | Mapping[str, np.ndarray], tmin: RangeSpec, tmax: RangeSpec,
            states: int | Sequence[int], fit_kwargs: dict[str, Any]):
-    """The points of a scan and what every point needs: (keys, shared task data)."""
+    """The points of a scan and what every point needs:
+    ``(keys, (data, kwargs per number of states, fit_kwargs))``."""
     names, n_t = _n_timeslices(binned)
     options = {"oscillating": fit_kwargs.get("oscillating", 0) or 0,
                "constant": bool(fit_kwargs.get("constant", False)),
@@ -347,8 +348,15 @@ def _setup(binned: np.ndarray | Mapping[str, np.ndarray], tmin: RangeSpec, tmax:
     state_list = sorted({p.states for p in points})
     keys = [(p.tmin, p.tmax, p.states) for p in points]
     kwargs_by_states = _per_states_kwargs(dict(fit_kwargs), names_of, state_list)
-    effective = _effective_masses(data, fit_kwargs)
-    return keys, (data, kwargs_by_states, effective)
+    return keys, (data, kwargs_by_states, fit_kwargs)
+
+
+def _with_effective_masses(setup: tuple[Any, dict[int, dict[str, Any]], dict[str, Any]]
+                           ) -> tuple[Any, dict[int, dict[str, Any]], dict[str, Any] | None]:
+    """The task data of the points to fit: the effective masses (starting values) added,
+    computed only when some point is fitted (not for a scan served by the cache)."""
+    data, kwargs_by_states, fit_kwargs = setup
+    return data, kwargs_by_states, _effective_masses(data, fit_kwargs)
 
 
 def _problems(shared: tuple[Any, dict[int, dict[str, Any]], dict[str, Any] | None],
@@ -379,8 +387,8 @@ def prepare_scan(binned: np.ndarray | Mapping[str, np.ndarray], *, tmin: RangeSp
     FitError
         As :func:`scan` would, for the first point that cannot be set up.
     """
-    keys, shared = _setup(binned, tmin, tmax, states, fit_kwargs)
-    return _problems(shared, keys)
+    keys, setup = _setup(binned, tmin, tmax, states, fit_kwargs)
+    return _problems(_with_effective_masses(setup), keys)
 
 
 class PointCache(Protocol):
@@ -449,11 +457,11 @@ def scan(binned: np.ndarray | Mapping[str, np.ndarray], *, tmin: RangeSpec, tmax
     ----------
     W. I. Jay, E. T. Neil, Phys. Rev. D 103 (2021) 114502.
     """
-    keys, shared = _setup(binned, tmin, tmax, states, fit_kwargs)
+    keys, setup = _setup(binned, tmin, tmax, states, fit_kwargs)
     found: dict[tuple[int, int, int], CorrelatorFit] = {}
     cache_keys: dict[tuple[int, int, int], str] = {}
     if cache is not None:
-        cache_keys = dict(zip(keys, cache.keys(shared[0], shared[1], keys)))
+        cache_keys = dict(zip(keys, cache.keys(setup[0], setup[1], keys)))
         for k in keys:
             fit = cache.get(cache_keys[k], k)
             if fit is not None:
@@ -463,6 +471,7 @@ def scan(binned: np.ndarray | Mapping[str, np.ndarray], *, tmin: RangeSpec, tmax
         progress.update(len(found))
     if not todo:
         return [found[k] for k in keys]
+    shared = _with_effective_masses(setup)
     problems = _problems(shared, todo)
     state_list = sorted({k[2] for k in todo})
     # 1. every range's central fit, here (one stacked engine call per number
