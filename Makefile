@@ -25,4 +25,4 @@ bench: $(STAMP)
 	$(PY) benchmarks/run_benchmarks.py
 
 clean:
-	rm -rf $(VENV) demo_output .pytest_cache
+	rm -rf $(VENV) demo_output batch_output .pytest_cache
