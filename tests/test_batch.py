@@ -113,3 +113,37 @@ def test_two_specs_writing_one_folder_is_an_error_of_the_second_only(tmp_path):
 
     clash = _clashes({a: tmp_path / "x" / "results", b: tmp_path / "x" / "results"})
     assert list(clash) == [b] and "output.dir" in clash[b] and "--out" in clash[b]
+
+
+def test_an_interrupted_batch_says_which_specs_finished(tmp_path, monkeypatch):
+    from plateaufit.pipeline import run as run_module
+    from plateaufit.pipeline.batch import run_batch
+    from plateaufit.run_folder import interruption_message
+
+    specs = [_ensemble(tmp_path / "specs", f"osprey-{c}", seed) for c, seed in
+             (("i", 11), ("j", 12), ("k", 13))]
+    real = run_module.run_spec
+    calls = []
+
+    def stop_at_the_second(*args, **kwargs):
+        calls.append(1)
+        if len(calls) == 2:
+            raise KeyboardInterrupt
+        return real(*args, **kwargs)
+    monkeypatch.setattr(run_module, "run_spec", stop_at_the_second)
+    with pytest.raises(KeyboardInterrupt) as caught:
+        run_batch([str(s) for s in specs], tmp_path / "b", jobs=1, plots=False,
+                  progress=False, cache=False)
+    message = interruption_message(caught.value)
+    assert message.startswith("1 of 3 spec(s) of the batch finished")
+    assert "no batch summary was written" in message
+    assert (tmp_path / "b" / "osprey-i" / "results.json").is_file()
+    assert not (tmp_path / "b" / "summary.html").exists()
+
+
+def test_without_a_cache_the_spec_lines_do_not_count_cached_points(tmp_path, capsys):
+    spec = _ensemble(tmp_path / "specs", "osprey-m", 14)
+    assert main(["batch", str(spec), "--out", str(tmp_path / "b"), "--jobs", "1",
+                 "--no-plots", "--quiet", "--no-cache"]) == 0
+    err = capsys.readouterr().err
+    assert "osprey-m: done in" in err and "from the cache" not in err

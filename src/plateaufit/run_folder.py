@@ -106,7 +106,16 @@ def interruption_message(exc: BaseException) -> str:
         E.g. ``"no results were written"``, or that the folder is incomplete and
         what to do.
     """
-    status = folder_state(exc)
+    batch = getattr(exc, "plateaufit_batch", None)   # (specs finished, specs in all)
+    if batch is not None:
+        done, total = batch
+        return (f"{done} of {total} spec(s) of the batch finished, their results complete; "
+                f"no batch summary was written; the spec in progress: "
+                f"{_folder_message(folder_state(exc))}")
+    return _folder_message(folder_state(exc))
+
+
+def _folder_message(status: FolderStatus | None) -> str:
     if status is None or status.state is FolderState.UNCHANGED:
         if status is not None and status.had_results:
             return f"no results were written; {status.path} still holds the earlier run's"

@@ -231,6 +231,7 @@ def run_batch(arguments: Sequence[str], out: str | os.PathLike[str] | None = Non
             except PlateaufitError:
                 pass   # the run reports it
     items: list[Any] = []
+    finished = 0
     bar = _batch_bar(total, progress)
     try:
         with make_executor(jobs=jobs, scheduler=scheduler) as executor:
@@ -255,9 +256,13 @@ def run_batch(arguments: Sequence[str], out: str | os.PathLike[str] | None = Non
                                  n_points=(tally.hits + tally.misses) if tally else 0)
                 items.append(item)
                 cached = sum(i.from_cache for i in items)
+                finished += item.error is None
                 bar.set_postfix_str(f"{cached} from the cache, {number}/{len(specs)} specs")
                 if echo:
                     _echo(bar, number, len(specs), item)
+    except KeyboardInterrupt as exc:   # Ctrl-C, SIGTERM: say what of the batch is on disk
+        exc.plateaufit_batch = (finished, len(specs))  # type: ignore[attr-defined]
+        raise
     finally:
         bar.close()
     with folder.writing(completion="summary.html") as staging:
@@ -268,8 +273,9 @@ def run_batch(arguments: Sequence[str], out: str | os.PathLike[str] | None = Non
 def _echo(bar: Any, number: int, n_specs: int, item: Any) -> None:
     name = item.ensemble or Path(item.spec).stem
     if item.error is None:
-        text = (f"[{number}/{n_specs}] {name}: done in {item.seconds:.1f} s, "
-                f"{item.from_cache} of {item.n_points} scan point(s) from the cache")
+        text = f"[{number}/{n_specs}] {name}: done in {item.seconds:.1f} s"
+        if item.n_points:    # counted only with a cache
+            text += f", {item.from_cache} of {item.n_points} scan point(s) from the cache"
     else:
         text = f"[{number}/{n_specs}] {name}: FAILED: {item.error}"
     bar.write(text, file=sys.stderr)
